@@ -1,0 +1,3 @@
+from seamscan.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,49 @@
+"""cffi build script (out-of-line API mode): compiles csrc/ into seamscan._seamcore.
+
+Run by the package build (``pip install .`` / ``pip install -e .``) through
+``cffi_modules``; the C sources are the same files a device compiles.
+"""
+
+from pathlib import Path
+
+from cffi import FFI
+
+ROOT = Path(__file__).resolve().parents[2]
+CSRC = ROOT / "csrc"
+
+CDEF = """
+typedef struct {
+    const uint8_t *image; const uint8_t *classes; const uint8_t *trans;
+    const uint8_t *out_index; const uint8_t *out_list; const uint8_t *sigs; const uint8_t *ports;
+    uint32_t size, layout, states, first_match, nsigs, nclasses, stride, trans_width,
+             out_width, max_outputs, max_len, nports;
+} ss_table;
+typedef struct { uint32_t state; uint32_t flags; uint64_t offset; } ss_state;
+typedef struct { uint8_t side; uint8_t transport; uint16_t server_port; uint32_t flags; } ss_ctx;
+typedef struct { uint32_t item; uint32_t sig; uint64_t start; uint64_t end; } ss_match;
+typedef struct {
+    uint32_t slot; uint32_t flags; ss_ctx ctx; uint32_t len; uint32_t done;
+    uint64_t data_off; uint64_t reset_offset;
+} ss_item;
+int ss_load(ss_table *t, const void *image, size_t size);
+const char *ss_strerror(int code);
+uint32_t ss_crc32(const void *data, size_t len);
+void ss_reset(ss_state *st, uint64_t offset);
+size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *data,
+               size_t len, ss_match *out, size_t cap, size_t *nout);
+size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
+                     const uint8_t *data, ss_match *out, size_t cap, size_t *nout);
+"""
+
+ffibuilder = FFI()
+ffibuilder.cdef(CDEF)
+ffibuilder.set_source(
+    "seamscan._seamcore",
+    '#include "seam.h"',
+    sources=[str(p.relative_to(ROOT)) for p in (CSRC / "seam_load.c", CSRC / "seam_scan.c")],
+    include_dirs=[str(CSRC.relative_to(ROOT))],
+    extra_compile_args=["-O3", "-std=c99"],
+)
+
+if __name__ == "__main__":
+    ffibuilder.compile(verbose=True)

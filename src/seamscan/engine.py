@@ -1,0 +1,247 @@
+"""The host engine: a table image scanned by the C runtime through cffi.
+
+The bytes a :class:`Table` scans with are exactly the image exported to a
+device (``Table.to_bytes()``), and the code that scans them is the same C
+(``csrc/``), so host results are device results.
+"""
+
+from __future__ import annotations
+
+import re
+import struct
+from typing import NamedTuple
+
+from seamscan import compiler, image
+from seamscan._seamcore import ffi, lib
+from seamscan.image import TableError
+
+SIDE_CODES = {None: 0, "client": 1, "server": 2}
+TRANSPORT_CODES = {None: 0, "tcp": 1, "udp": 2}
+CTX_HAS_PORT = 0x01
+CTX_DATAGRAM = 0x02
+ITEM_RESET = 0x01
+ITEM = struct.Struct("<IIBBHIIIQQ")  # ss_item: slot flags ctx(side transport port flags) len done data_off reset_offset
+MATCH = struct.Struct("<IIQQ")  # ss_match: item sig start end
+_BUFFER_MATCHES = 4096
+
+
+class Match(NamedTuple):
+    """One occurrence: signature id, stream offsets [start, end)."""
+
+    sig: str
+    start: int
+    end: int
+
+
+_SIZE = re.compile(r"^\s*(\d+)\s*([KMG]i?B|B)?\s*$", re.I)
+_UNITS = {None: 1, "b": 1, "kib": 1024, "mib": 1024**2, "gib": 1024**3, "kb": 1000, "mb": 1000**2,
+          "gb": 1000**3}
+
+
+def parse_size(value) -> int:
+    """A byte count: an int, or text such as ``"32KiB"``, ``"2 MiB"``, ``"4096"``."""
+    if isinstance(value, int):
+        return value
+    m = _SIZE.match(str(value))
+    if not m:
+        raise ValueError(f"not a size: {value!r} (write e.g. 32768, 32KiB, 2MiB)")
+    return int(m.group(1)) * _UNITS[m.group(2).lower() if m.group(2) else None]
+
+
+def compile(sigset, layout: str = "dense", budget=None, *,
+            max_states: int = compiler.DEFAULT_MAX_STATES) -> Table:
+    """Compile a :class:`~seamscan.signatures.SignatureSet` into a table.
+
+    ``layout`` is ``"dense"`` (more layouts arrive with the device tables).
+    ``budget`` (bytes, or text like ``"32KiB"``) is the most the image may
+    take; a larger image is a :class:`~seamscan.compiler.CompileError`.
+    """
+    if layout not in image.LAYOUTS:
+        raise compiler.CompileError(
+            f"layout {layout!r} is not available; this version has: {', '.join(image.LAYOUTS)}")
+    sigs = list(sigset)
+    automaton = compiler.build([s.byte_sets() for s in sigs], max_states=max_states,
+                               names=[s.id for s in sigs])
+    blob = image.encode_dense(automaton, sigs)
+    if budget is not None and len(blob) > parse_size(budget):
+        raise compiler.CompileError(
+            f"the {layout} table takes {len(blob):,} bytes, over the budget of "
+            f"{parse_size(budget):,} bytes")
+    table = Table.from_bytes(blob)
+    table.signatures = sigset
+    return table
+
+
+class Table:
+    """A loaded, validated table image."""
+
+    def __init__(self, blob: bytes):
+        self._blob = bytes(blob)
+        self._buf = ffi.from_buffer(self._blob)
+        self._t = ffi.new("ss_table *")
+        rc = lib.ss_load(self._t, self._buf, len(self._blob))
+        if rc != 0:
+            raise TableError(f"table image refused: {ffi.string(lib.ss_strerror(rc)).decode()}"
+                             f" (code {rc})")
+        self.header = image.read_header(self._blob)
+        self.ids, self.labels = image.read_names(self._blob, self.header)
+        self.lengths = image.signature_lengths(self._blob, self.header)
+        self.signatures = None  # the SignatureSet, when compiled here
+        self._cap = max(_BUFFER_MATCHES, 8 * self._t.max_outputs)
+
+    @classmethod
+    def from_bytes(cls, blob) -> Table:
+        """Load an image; a damaged one raises :class:`~seamscan.image.TableError`."""
+        return cls(blob)
+
+    def to_bytes(self) -> bytes:
+        return self._blob
+
+    @property
+    def nbytes(self) -> int:
+        return len(self._blob)
+
+    @property
+    def states(self) -> int:
+        return int(self._t.states)
+
+    @property
+    def classes(self) -> int:
+        return int(self._t.nclasses)
+
+    @property
+    def layout(self) -> str:
+        return self.header.layout_name
+
+    @property
+    def max_outputs(self) -> int:
+        return int(self._t.max_outputs)
+
+    def __len__(self) -> int:
+        return int(self._t.nsigs)
+
+    def __repr__(self) -> str:
+        return (f"<Table {self.layout}: {len(self)} signatures, {self.states} states, "
+                f"{self.classes} classes, {self.nbytes:,} bytes>")
+
+    def scan(self, data, *, side=None, transport=None, server_port=None) -> list[Match]:
+        """Every occurrence in ``data`` (offsets from its start), ordered by end
+        offset then signature order.  ``side``/``transport``/``server_port``
+        filter signatures as a flow would; ``None`` filters nothing."""
+        return self.stream(side=side, transport=transport, server_port=server_port).feed(data)
+
+    def stream(self, *, side=None, transport=None, server_port=None, datagram=False) -> Stream:
+        return Stream(self, side=side, transport=transport, server_port=server_port,
+                      datagram=datagram)
+
+    def scan_batch(self, payloads) -> list[list[Match]]:
+        """Scan many independent buffers in one call (each from its own start)."""
+        scanner = BatchScanner(self, len(payloads))
+        found = scanner.scan([(i, ITEM_RESET, 0, 0, p, 0) for i, p in enumerate(payloads)])
+        result: list[list[Match]] = [[] for _ in payloads]
+        ids = self.ids
+        for item, sig, start, end in found:
+            result[item].append(Match(ids[sig], start, end))
+        return result
+
+    def _matches(self, out, n) -> list[Match]:
+        ids = self.ids
+        return [Match(ids[sig], start, end)
+                for _item, sig, start, end in MATCH.iter_unpack(ffi.buffer(out, n * MATCH.size))]
+
+
+def context(side=None, transport=None, server_port=None, datagram=False) -> tuple[int, int, int, int]:
+    """(side, transport, port, flags) codes of an ``ss_ctx``."""
+    flags = (CTX_HAS_PORT if server_port is not None else 0) | (CTX_DATAGRAM if datagram else 0)
+    return (SIDE_CODES[side], TRANSPORT_CODES[transport], server_port or 0, flags)
+
+
+class Stream:
+    """One byte stream (one flow side): state carried between ``feed`` calls."""
+
+    def __init__(self, table: Table, *, side=None, transport=None, server_port=None,
+                 datagram=False):
+        self.table = table
+        self._st = ffi.new("ss_state *")
+        self._ctx = ffi.new("ss_ctx *", context(side, transport, server_port, datagram))
+        self._out = ffi.new("ss_match[]", table._cap)
+        lib.ss_reset(self._st, 0)
+
+    @property
+    def offset(self) -> int:
+        """Stream offset of the next byte."""
+        return int(self._st.offset)
+
+    def reset(self, offset: int = 0) -> None:
+        """Back to the start state (as after a gap), next byte at ``offset``."""
+        lib.ss_reset(self._st, offset)
+
+    def feed(self, data) -> list[Match]:
+        buf = ffi.from_buffer(data)
+        total = len(buf)
+        done = 0
+        found: list[Match] = []
+        nout = ffi.new("size_t *")
+        t = self.table
+        while True:
+            done += lib.ss_scan(t._t, self._st, self._ctx, buf + done, total - done,
+                                self._out, t._cap, nout)
+            if nout[0]:
+                found += t._matches(self._out, nout[0])
+            if done >= total:
+                return found
+
+
+class BatchScanner:
+    """Many flow sides (slots), scanned a batch of payloads per C call."""
+
+    def __init__(self, table: Table, slots: int):
+        self.table = table
+        self.slots = slots
+        self.states = ffi.new("ss_state[]", max(1, slots))
+        self._out = ffi.new("ss_match[]", table._cap)
+        self._nout = ffi.new("size_t *")
+        self._items = bytearray()
+        self._items_c = None
+
+    def reset(self, slot: int, offset: int = 0) -> None:
+        lib.ss_reset(self.states + slot, offset)
+
+    def offset(self, slot: int) -> int:
+        return int(self.states[slot].offset)
+
+    def scan(self, items) -> list[tuple[int, int, int, int]]:
+        """``items``: (slot, flags, ctx, ctx_flags_extra, payload, reset_offset) where
+        ctx is a tuple from :func:`context` or 0 for none.  Returns (item, sig, start, end)."""
+        packed = bytearray(ITEM.size * len(items))
+        chunks = []
+        off = 0
+        pack = ITEM.pack_into
+        for i, (slot, flags, ctx, _extra, payload, reset_offset) in enumerate(items):
+            side, transport, port, cflags = ctx or (0, 0, 0, 0)
+            n = len(payload)
+            pack(packed, i * ITEM.size, slot, flags, side, transport, port, cflags, n, 0, off,
+                 reset_offset)
+            chunks.append(payload)
+            off += n
+        return self.scan_packed(packed, len(items), b"".join(chunks))
+
+    def scan_packed(self, packed: bytearray, n: int, data: bytes) -> list[tuple[int, int, int, int]]:
+        """The same with items already packed as ``ss_item`` records over ``data``."""
+        items = ffi.from_buffer("ss_item[]", packed)
+        buf = ffi.from_buffer(data or b"\0")
+        t = self.table
+        found: list[tuple[int, int, int, int]] = []
+        start = 0
+        while True:
+            done = lib.ss_scan_batch(t._t, self.states, items + start, n - start, buf,
+                                     self._out, t._cap, self._nout)
+            k = self._nout[0]
+            if k:
+                got = MATCH.iter_unpack(ffi.buffer(self._out, k * MATCH.size))
+                if start:  # item indices count from the resumed position
+                    got = [(item + start, sig, s, e) for item, sig, s, e in got]
+                found += got
+            start += done
+            if start >= n:
+                return found
