@@ -1,0 +1,300 @@
+"""The ``seamscan`` command line.
+
+Exit codes: 0 success; 2 usage error or a bad signature set; 3 damaged input
+(a capture or table image), with everything found before the damage written.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+
+EXIT_OK, EXIT_USAGE, EXIT_DAMAGED = 0, 2, 3
+
+DESCRIPTION = """\
+Exact multi-signature matching in packet payloads, across packet boundaries.
+
+  seamscan scan CAPTURE... --rules SET.toml     replay captures, print per-flow matches
+  seamscan compile SET.toml -o TABLE.seam      build the table image a device scans with
+  seamscan inspect TABLE.seam                  validate an image and show what it holds
+
+Exit codes: 0 success, 2 usage or signature-set error, 3 damaged input
+(partial results written)."""
+
+SCAN_EPILOG = """\
+Output formats:
+  table  flows that matched, each with its matches (default on a terminal)
+  jsonl  one JSON object per line: match, gap, overlap, flow, error, and a
+         final summary record (default when writing to a file or pipe)
+  csv    match records only, with a header row
+
+Offsets (start, end) are 0-based byte offsets in the stream of the side that
+sent the bytes, end exclusive; frame is the 1-based record number, in its
+file, of the packet that completed the match.
+
+Examples:
+  seamscan scan pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml
+  seamscan scan lab.pcapng --table device.seam --format jsonl -o out.jsonl
+"""
+
+
+def _size_arg(text):
+    from seamscan.engine import parse_size
+
+    try:
+        return parse_size(text)
+    except ValueError as err:
+        raise argparse.ArgumentTypeError(str(err)) from None
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(prog="seamscan", description=DESCRIPTION,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = ap.add_subparsers(dest="command", metavar="COMMAND")
+
+    sc = sub.add_parser("scan", help="replay captures and report every signature match per flow",
+                        description="Replay pcap / pcapng captures (.gz too) offline: reassemble "
+                        "each flow side's stream and report every signature that fires, and "
+                        "exactly where.", epilog=SCAN_EPILOG,
+                        formatter_class=argparse.RawDescriptionHelpFormatter)
+    sc.add_argument("captures", nargs="+", metavar="CAPTURE", help="pcap or pcapng files")
+    src = sc.add_mutually_exclusive_group(required=True)
+    src.add_argument("--rules", metavar="SET.toml", help="signature set to compile and scan with")
+    src.add_argument("--table", metavar="TABLE.seam", help="an exported table image to scan with")
+    sc.add_argument("--format", choices=("table", "jsonl", "csv"),
+                    help="output format (default: table on a terminal, else jsonl)")
+    sc.add_argument("-o", "--output", metavar="FILE", help="write records here (default: stdout)")
+    sc.add_argument("--jobs", type=int, default=1, metavar="N",
+                    help="scan N capture files in parallel processes; output stays in file "
+                    "order (default 1)")
+    sc.add_argument("--quiet", action="store_true", help="no progress bar")
+    sc.add_argument("--show-clean", action="store_true",
+                    help="table format: also list flows without matches")
+    lim = sc.add_argument_group("flow limits (every drop and eviction is counted in the summary)")
+    lim.add_argument("--hold-bytes", type=_size_arg, default=65536, metavar="SIZE",
+                     help="out-of-order bytes held per flow before a hole becomes a gap "
+                     "(default 64KiB)")
+    lim.add_argument("--hold-total", type=_size_arg, default=64 * 2**20, metavar="SIZE",
+                     help="out-of-order bytes held over all flows (default 64MiB)")
+    lim.add_argument("--max-flows", type=int, default=65536, metavar="N",
+                     help="live flows; beyond it the longest-idle flow is evicted (default 65536)")
+    lim.add_argument("--tcp-idle", type=float, default=300.0, metavar="SECONDS",
+                     help="capture seconds after which an idle TCP flow ends (default 300)")
+    lim.add_argument("--udp-idle", type=float, default=60.0, metavar="SECONDS",
+                     help="capture seconds after which an idle UDP flow ends (default 60)")
+
+    co = sub.add_parser("compile", help="compile a signature set into a table image",
+                        description="Compile a signature set into a table image (.seam): the "
+                        "exact bytes the host scans with and a device loads.")
+    co.add_argument("rules", metavar="SET.toml")
+    co.add_argument("-o", "--output", metavar="TABLE.seam", required=True)
+    co.add_argument("--layout", default="dense", choices=("dense",),
+                    help="table layout (default dense: one lookup per byte)")
+    co.add_argument("--budget", type=_size_arg, metavar="SIZE",
+                    help="the most bytes the image may take, e.g. 32KiB")
+    co.add_argument("--max-states", type=int, metavar="N", help="automaton state cap")
+
+    ins = sub.add_parser("inspect", help="validate a table image and print its header",
+                         description="Validate a table image (CRC, every bound) and print its "
+                         "header and statistics. A damaged image exits 3.")
+    ins.add_argument("table", metavar="TABLE.seam")
+    return ap
+
+
+def main(argv=None) -> int:
+    ap = build_parser()
+    args = ap.parse_args(argv)
+    if args.version:
+        from seamscan import __version__
+
+        print(f"seamscan {__version__}")
+        return EXIT_OK
+    if not args.command:
+        ap.print_help()
+        return EXIT_USAGE
+    try:
+        return {"scan": cmd_scan, "compile": cmd_compile, "inspect": cmd_inspect}[args.command](args)
+    except KeyboardInterrupt:
+        print("seamscan: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
+
+
+def _fail(message: str, code: int) -> int:
+    print(f"seamscan: {message}", file=sys.stderr)
+    return code
+
+
+def _load_table(args):
+    """(table, exit code or None) from --rules or --table."""
+    from seamscan.image import TableError
+
+    if getattr(args, "rules", None):
+        from seamscan import engine
+        from seamscan.compiler import CompileError
+        from seamscan.signatures import SignatureError, load_signatures
+
+        try:
+            sigset = load_signatures(args.rules)
+            kw = {"max_states": args.max_states} if getattr(args, "max_states", None) else {}
+            return engine.compile(sigset, **kw), None
+        except SignatureError as err:
+            return None, _fail(str(err), EXIT_USAGE)
+        except CompileError as err:
+            return None, _fail(f"{args.rules}: {err}", EXIT_USAGE)
+    from seamscan.engine import Table
+
+    try:
+        with open(args.table, "rb") as f:
+            blob = f.read()
+    except OSError as err:
+        return None, _fail(f"{args.table}: cannot read: {err.strerror}", EXIT_USAGE)
+    try:
+        return Table.from_bytes(blob), None
+    except TableError as err:
+        return None, _fail(f"{args.table}: {err}", EXIT_DAMAGED)
+
+
+def cmd_scan(args) -> int:
+    for path in args.captures:
+        if not os.path.isfile(path):
+            return _fail(f"{path}: no such capture file", EXIT_USAGE)
+    if args.jobs < 1:
+        return _fail("--jobs must be at least 1", EXIT_USAGE)
+    if args.max_flows < 1:
+        return _fail("--max-flows must be at least 1", EXIT_USAGE)
+    table, code = _load_table(args)
+    if table is None:
+        return code
+    from seamscan import records, replay
+
+    options = replay.ReplayOptions(hold_bytes=args.hold_bytes, hold_total=args.hold_total,
+                                   max_flows=args.max_flows, tcp_idle=args.tcp_idle,
+                                   udp_idle=args.udp_idle)
+    out = open(args.output, "w", encoding="utf-8", newline="") if args.output else sys.stdout
+    fmt = args.format or ("table" if out is sys.stdout and sys.stdout.isatty() else "jsonl")
+    labels = dict(zip(table.ids, table.labels, strict=True))
+    writer = records.make_writer(fmt, out, show_clean=args.show_clean, labels=labels) \
+        if fmt == "table" else records.make_writer(fmt, out)
+    bar = _progress(args)
+    total = replay.Counter()
+    damaged = []
+    import time
+
+    t0 = time.perf_counter()
+    try:
+        for result in _results(args, table, options, writer.write, bar):
+            total.update(result.counters)
+            if result.error:
+                damaged.append(result.error)
+                writer.write({"type": "error", "file": result.path, "message": result.error})
+        if bar is not None:
+            bar.close()
+        writer.write(records.summary_record(total, time.perf_counter() - t0))
+        writer.close()
+    finally:
+        if out is not sys.stdout:
+            out.close()
+    for message in damaged:
+        print(f"seamscan: damaged capture: {message}; everything before the damage was "
+              "reported", file=sys.stderr)
+    return EXIT_DAMAGED if damaged else EXIT_OK
+
+
+def _progress(args):
+    if args.quiet or not sys.stderr.isatty():
+        return None
+    from tqdm import tqdm
+
+    total = sum(os.path.getsize(p) for p in args.captures)
+    return tqdm(total=total, unit="B", unit_scale=True, desc="scanning", file=sys.stderr,
+                leave=False)
+
+
+def _results(args, table, options, write, bar):
+    """Replay each file, in file order; with --jobs, files in parallel processes."""
+    from seamscan import replay
+
+    if args.jobs == 1 or len(args.captures) == 1:
+        done = 0
+        for path in args.captures:
+            def progress(pos, base=done):
+                if bar is not None:
+                    bar.n = base + pos
+                    bar.refresh()
+
+            yield replay.replay_file(path, table, options, emit=write, progress=progress)
+            done += os.path.getsize(path)
+        return
+    from concurrent.futures import ProcessPoolExecutor
+
+    blob = table.to_bytes()
+    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        futures = [pool.submit(_replay_worker, path, blob, options) for path in args.captures]
+        for path, fut in zip(args.captures, futures, strict=True):
+            result = fut.result()
+            for rec in result.records:
+                write(rec)
+            if bar is not None:
+                bar.update(os.path.getsize(path))
+            result.records = []
+            yield result
+
+
+def _replay_worker(path, blob, options):
+    from seamscan import replay
+    from seamscan.engine import Table
+
+    return replay.replay_file(path, Table.from_bytes(blob), options)
+
+
+def cmd_compile(args) -> int:
+    import time
+
+    t0 = time.perf_counter()
+    table, code = _load_table(args)
+    if table is None:
+        return code
+    elapsed = time.perf_counter() - t0
+    if args.budget is not None and table.nbytes > args.budget:
+        print(size_report(table, elapsed, args.budget))
+        return _fail(f"the {table.layout} table ({table.nbytes:,} bytes) does not fit the budget "
+                     f"of {args.budget:,} bytes", EXIT_USAGE)
+    with open(args.output, "wb") as f:
+        f.write(table.to_bytes())
+    print(size_report(table, elapsed, args.budget))
+    print(f"wrote {args.output}")
+    return EXIT_OK
+
+
+def size_report(table, elapsed=None, budget=None) -> str:
+    from seamscan.image import SECTION_NAMES
+
+    h = table.header
+    lines = [f"layout {table.layout}: {table.nbytes:,} bytes, {table.states:,} states, "
+             f"{table.classes} byte classes, {len(table)} signatures, "
+             f"{h.trans_width * 8}-bit state ids, 1 lookup per byte"]
+    for kind, (_off, size) in sorted(h.sections.items()):
+        lines.append(f"    {SECTION_NAMES.get(kind, f'section {kind}'):<18} {size:>12,} bytes")
+    if elapsed is not None:
+        lines.append(f"    compiled in {elapsed:.2f} s")
+    if budget is not None:
+        verdict = "fits" if table.nbytes <= budget else "does NOT fit"
+        lines.append(f"    budget {budget:,} bytes: {verdict}")
+    return "\n".join(lines)
+
+
+def cmd_inspect(args) -> int:
+    args.rules = None
+    table, code = _load_table(args)
+    if table is None:
+        return code
+    h = table.header
+    print(f"{args.table}: valid table image, format version {h.version}, CRC-32 {h.crc:08x}")
+    print(size_report(table))
+    print(f"    longest signature {h.max_len} bytes, at most {h.max_outputs} outputs per state")
+    return EXIT_OK
