@@ -85,14 +85,14 @@ typedef struct {
  * 16 bytes, held by a static assert in seam.c. */
 typedef struct {
     uint32_t state;  /* automaton state */
-    uint32_t flags;  /* reserved, 0 */
+    uint32_t unit;   /* bytes of the current UDP datagram already scanned */
     uint64_t offset; /* stream offset of the next byte */
 } ss_state;
 
 /* What the scanner knows about the bytes it is given.  Unknown fields are
  * zero, and a zero field filters nothing. */
 #define SS_CTX_HAS_PORT 0x01u /* server_port is known */
-#define SS_CTX_DATAGRAM 0x02u /* the bytes are one UDP datagram */
+#define SS_CTX_DATAGRAM 0x02u /* the bytes are (the rest of) one UDP datagram */
 typedef struct {
     uint8_t side;         /* SS_SIDE_CLIENT / SS_SIDE_SERVER: who sent the bytes; 0 unknown */
     uint8_t transport;    /* SS_TRANSPORT_TCP / _UDP; 0 unknown */
@@ -116,6 +116,11 @@ uint32_t ss_crc32(const void *data, size_t len);
 
 /* Put a flow side at the start state, at stream offset `offset`. */
 void ss_reset(ss_state *st, uint64_t offset);
+
+/* Before the first ss_scan of each UDP datagram (SS_CTX_DATAGRAM): the
+ * datagram begins at st->offset.  Calls that continue it (after out[] was
+ * full) leave st->unit alone. */
+void ss_new_datagram(ss_state *st);
 
 /* Scan `len` bytes that follow st->offset in the stream.  Writes at most
  * `cap` matches to out[] (cap must be >= t->max_outputs), sets *nout, and

@@ -86,9 +86,12 @@ static int check_sections(const uint8_t *img, uint32_t size, uint32_t nsec)
         uint64_t off = ss_ld32(e + 4), len = ss_ld32(e + 8);
         if (off < first || off + len > size || (off & 7u) != 0 || ss_ld16(e + 2) != 0)
             return SS_ERR_SECTION;
-        for (j = 0; j < i; j++)
-            if (ss_ld16(img + HEADER_SIZE + SECTION_ENTRY * j) == ss_ld16(e))
-                return SS_ERR_SECTION;
+        for (j = 0; j < i; j++) {
+            const uint8_t *f = img + HEADER_SIZE + SECTION_ENTRY * j;
+            uint64_t foff = ss_ld32(f + 4), flen = ss_ld32(f + 8);
+            if (ss_ld16(f) == ss_ld16(e) || (len && flen && off < foff + flen && foff < off + len))
+                return SS_ERR_SECTION; /* duplicated kind, or overlapping bytes */
+        }
     }
     return SS_OK;
 }
@@ -126,11 +129,17 @@ static int check_outputs(ss_table *t, uint32_t index_size, uint32_t list_size, u
     }
     if (prev != entries || most != want_max)
         return SS_ERR_OUTPUTS;
-    for (k = 0; k < entries; k++) {
-        const uint8_t *p = t->out_list + k * t->out_width;
-        uint32_t sig = t->out_width == 2 ? ss_ld16(p) : ss_ld32(p);
-        if (sig >= t->nsigs)
-            return SS_ERR_OUTPUTS;
+    for (k = 1, prev = 0; k <= nmatch; k++) {
+        uint32_t stop = ss_ld32(t->out_index + 4u * k), e;
+        uint32_t last = 0;
+        for (e = prev; e < stop; e++) { /* ascending signature indices < nsigs */
+            const uint8_t *p = t->out_list + (uint64_t)e * t->out_width;
+            uint32_t sig = t->out_width == 2 ? ss_ld16(p) : ss_ld32(p);
+            if (sig >= t->nsigs || (e > prev && sig <= last))
+                return SS_ERR_OUTPUTS;
+            last = sig;
+        }
+        prev = stop;
     }
     t->max_outputs = most;
     return SS_OK;
@@ -149,7 +158,8 @@ static int check_sigs(const ss_table *t, uint32_t sigs_size, uint32_t ports_size
             (r[2] & ~(SS_SIG_HAS_WINDOW | SS_SIG_DATAGRAM)) != 0 || len == 0 ||
             first + nports > t->nports)
             return SS_ERR_SIGS;
-        if ((r[2] & SS_SIG_HAS_WINDOW) && ss_ld32(r + 12) >= ss_ld32(r + 16))
+        if ((r[2] & SS_SIG_HAS_WINDOW) ? ss_ld32(r + 12) >= ss_ld32(r + 16)
+                                       : (ss_ld32(r + 12) != 0 || ss_ld32(r + 16) != 0xFFFFFFFFu))
             return SS_ERR_SIGS;
         if (len > longest)
             longest = len;
@@ -196,7 +206,8 @@ int ss_load(ss_table *t, const void *image, size_t size)
         (t->trans_width != 1 && t->trans_width != 2 && t->trans_width != 4) ||
         (t->trans_width < 4 && t->states > (1u << (8u * t->trans_width))) ||
         (t->out_width != 2 && t->out_width != 4) || t->max_len == 0 || t->max_len > 0xFFFFu ||
-        ss_ld32(img + 16) != 0)
+        ss_ld32(img + 16) != 0 || ss_ld32(img + 48) != 0 || ss_ld32(img + 52) != 0 ||
+        ss_ld32(img + 56) != 0 || ss_ld32(img + 60) != 0)
         return SS_ERR_HEADER;
 
     rc = check_sections(img, isize, nsec);
@@ -229,6 +240,11 @@ int ss_load(ss_table *t, const void *image, size_t size)
 void ss_reset(ss_state *st, uint64_t offset)
 {
     st->state = 0;
-    st->flags = 0;
+    st->unit = 0;
     st->offset = offset;
+}
+
+void ss_new_datagram(ss_state *st)
+{
+    st->unit = 0;
 }

@@ -184,12 +184,13 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
         st->state = 0;
     ln.state = st->state;
     ln.offset = st->offset;
-    ln.unit_start = st->offset;
+    ln.unit_start = st->offset - st->unit;
     ln.ctx = ctx ? ctx : &none;
     ln.item = 0;
     done = scan1(t, &ln, data, len, out, cap, nout);
     st->state = ln.state;
     st->offset = ln.offset;
+    st->unit += (uint32_t)done;
     return done;
 }
 
@@ -214,6 +215,7 @@ static void finish(ss_state *states, ss_item *it, const lane *ln)
 {
     states[it->slot].state = ln->state;
     states[it->slot].offset = ln->offset;
+    states[it->slot].unit = it->done;
     if (it->done >= it->len)
         it->flags |= SS_ITEM_DONE;
 }

@@ -372,10 +372,6 @@ def _first_difference(got, want) -> str:
     return f"lengths C {len(got)}, Python {len(want)}"
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "runtime bug (reported to the lead): ss_scan takes st->offset as the datagram's start on "
-    "every call, so after 'out[] full, call again' a datagram-scoped match that began before the "
-    "resume point is dropped"))
 def test_datagram_match_survives_a_full_out_buffer(seamrun, tmp_path):
     # Two UDP signatures, one output each: max_outputs = 1, so the harness's
     # out[] holds one match and the scan of "aab" resumes twice.
@@ -643,9 +639,6 @@ def _overlapping(base: Image) -> list[tuple[str, bytes]]:
     ]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "runtime bug (reported to the lead): ss_load does not check that sections are disjoint, "
-    "though seam.h documents SS_ERR_SECTION for overlapping sections"))
 def test_overlapping_sections_refused(seamrun_asan, tmp_path):
     cases = [(f"{name}-{case}", blob) for name, base in _base_images().items()
              for case, blob in _overlapping(base)]
@@ -659,7 +652,7 @@ def test_overlapping_sections_refused(seamrun_asan, tmp_path):
 
 
 def _unenforced(base: Image) -> dict[str, bytes]:
-    """Re-CRC'd images breaking a csrc/FORMAT.md rule that ss_load does not check."""
+    """Re-CRC'd images breaking a csrc/FORMAT.md rule (each once missed by ss_load)."""
     out_index, out_list, sigs = base.at(SEC_OUT_INDEX), base.at(SEC_OUT_LIST), base.at(SEC_SIGS)
     nmatch = base.states - base.first_match
     index = struct.unpack_from(f"<{nmatch + 1}I", base.blob, out_index)
@@ -679,9 +672,6 @@ def _unenforced(base: Image) -> dict[str, bytes]:
 
 
 @pytest.mark.parametrize("case", ["reserved-header-byte", "outputs-not-ascending", "no-window-values"])
-@pytest.mark.xfail(strict=True, reason=(
-    "runtime gap (reported to the lead): csrc/FORMAT.md says ss_load refuses an image unless every "
-    "rule holds, but this rule is not checked"))
 def test_format_rules_enforced_by_the_loader(case, seamrun_asan, tmp_path):
     blob = _unenforced(_base_images()["small"])[case]
     path = tmp_path / f"{case}.seam"

@@ -18,7 +18,7 @@ typedef struct {
     uint32_t size, layout, states, first_match, nsigs, nclasses, stride, trans_width,
              out_width, max_outputs, max_len, nports;
 } ss_table;
-typedef struct { uint32_t state; uint32_t flags; uint64_t offset; } ss_state;
+typedef struct { uint32_t state; uint32_t unit; uint64_t offset; } ss_state;
 typedef struct { uint8_t side; uint8_t transport; uint16_t server_port; uint32_t flags; } ss_ctx;
 typedef struct { uint32_t item; uint32_t sig; uint64_t start; uint64_t end; } ss_match;
 typedef struct {
@@ -29,6 +29,7 @@ int ss_load(ss_table *t, const void *image, size_t size);
 const char *ss_strerror(int code);
 uint32_t ss_crc32(const void *data, size_t len);
 void ss_reset(ss_state *st, uint64_t offset);
+void ss_new_datagram(ss_state *st);
 size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *data,
                size_t len, ss_match *out, size_t cap, size_t *nout);
 size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,

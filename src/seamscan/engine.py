@@ -165,6 +165,7 @@ class Stream:
         self._st = ffi.new("ss_state *")
         self._ctx = ffi.new("ss_ctx *", context(side, transport, server_port, datagram))
         self._out = ffi.new("ss_match[]", table._cap)
+        self._datagram = datagram
         lib.ss_reset(self._st, 0)
 
     @property
@@ -177,6 +178,9 @@ class Stream:
         lib.ss_reset(self._st, offset)
 
     def feed(self, data) -> list[Match]:
+        """Scan the next bytes; with ``datagram=True`` each call is one datagram."""
+        if self._datagram:
+            lib.ss_new_datagram(self._st)
         buf = ffi.from_buffer(data)
         total = len(buf)
         done = 0
