@@ -12,6 +12,7 @@ each flow when it ends.
 
 from __future__ import annotations
 
+import math
 import time
 from collections import Counter
 from dataclasses import dataclass, field
@@ -226,6 +227,7 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
             if progress is not None:
                 progress(reader.position())
             reader.close()
+    decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
     tracker.finish()
     sink.flush()
     result.elapsed = time.perf_counter() - t0

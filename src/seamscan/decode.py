@@ -1,0 +1,254 @@
+"""Fast header decoding: link layer -> IPv4/IPv6 -> TCP/UDP, on raw bytes.
+
+``Decoder.decode(frame_no, ts, linktype, frame)`` returns a ``Packet`` for a
+TCP or UDP packet and ``None`` for anything else; it never raises on bad
+input. Headers are read with ``struct`` and indexing straight from the
+frame bytes (no per-layer objects: this is the replay's hot path).
+
+Link types: Ethernet (1) with any depth of 802.1Q / 802.1ad tags (TPID
+0x8100, 0x88a8, 0x9100); Linux cooked capture v1 (113) and v2 (276); raw IP
+(101, and 12 or 14 as some systems write it; the version nibble picks IPv4
+or IPv6); IPv4 (228) and IPv6 (229); BSD loopback (0: 4-byte address family
+in the writer's byte order, told apart by which half is zero) and OpenBSD
+loopback (108: network byte order), family 2 = IPv4, 24/28/30 = IPv6.
+
+IP: IPv4 options are skipped by IHL; IPv6 extension headers hop-by-hop (0),
+routing (43), destination options (60) ((len + 1) * 8 bytes), AH (51,
+(len + 2) * 4 bytes, RFC 4302) and fragment (44) are walked; ESP (50), no
+next header (59) and every other protocol end the chain as "other IP". A
+Fragment header with offset 0 and M = 0 (an atomic fragment, RFC 6946) is
+skipped over. Fragments go to the ``ipfrag.Defragmenter``; the reassembled
+datagram is decoded as if it arrived in the frame that completed it.
+Checksums are not verified (captures taken on the sending host carry
+unfinished checksums when the network card computes them) (common
+practice). The L4 payload ends where the IP header's length says, never at
+the end of the frame (short Ethernet frames carry padding, and some links
+append a frame check sequence); a UDP payload ends where the UDP length
+says, which may be before the IP payload's end, never after. IPv6 jumbograms
+(payload length 0) are counted as malformed.
+
+Counters (``Decoder.counters``, all present from the start):
+
+- ``frames``: frames given to ``decode``;
+- ``decoded``: TCP or UDP packets returned;
+- ``not_ip``: link layer fine but carrying neither IPv4 nor IPv6 (ARP, ...);
+- ``other_ip``: IP, but not TCP or UDP after reassembly (ICMP, ESP, ...);
+- ``malformed``: a header truncated or inconsistent anywhere: IPv4 IHL < 5,
+  total length below the header or beyond the frame, IPv6 payload length
+  beyond the frame, an extension chain running past the payload, TCP data
+  offset < 5 or beyond the datagram, UDP length < 8 or beyond the datagram,
+  an IP version that the link type contradicts;
+- ``unknown_link``: a link type not listed above;
+- ``fragments``: frames that carried an IP fragment (held, dropped or
+  completing a datagram; a completing frame also counts as decoded,
+  other_ip or malformed according to the reassembled datagram);
+- ``frag_*``: the defragmenter's counters (see ``ipfrag``): ``reassembled``,
+  ``overlaps``, ``timeouts``, ``evicted``, ``too_big``, ``too_many``, ``bad``.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import socket
+import struct
+from collections import namedtuple
+
+from seamscan.ipfrag import Defragmenter
+
+COUNTERS = ("frames", "decoded", "not_ip", "other_ip", "malformed", "unknown_link",
+            "fragments")
+
+
+class Packet(namedtuple("Packet", "proto src dst sport dport seq ack flags payload frame ts")):
+    """A decoded TCP or UDP packet (a tuple; fields by name or position).
+
+    ``proto`` 6 or 17; ``src``/``dst`` the IP addresses as 4 or 16 bytes;
+    ``sport``/``dport``; ``seq``/``ack``/``flags`` (TCP sequence, ack and
+    flags byte; 0 for UDP); ``payload`` the L4 payload bytes; ``frame`` the
+    frame number and ``ts`` the capture time of the frame it came in (for a
+    reassembled datagram, the frame that completed it).
+    """
+
+    __slots__ = ()
+
+
+def format_ip(addr: bytes) -> str:
+    """Canonical text form of a 4-byte (dotted quad) or 16-byte (RFC 5952)
+    address; ``ValueError`` for any other length."""
+    if len(addr) == 4:
+        return socket.inet_ntop(socket.AF_INET, addr)
+    if len(addr) == 16:
+        return str(ipaddress.IPv6Address(addr))
+    raise ValueError(f"an IP address has 4 or 16 bytes, not {len(addr)}")
+
+
+_new = tuple.__new__
+_VLAN_TPIDS = (0x8100, 0x88A8, 0x9100)
+_RAW_IP = (101, 12, 14)
+_IP_FAMILY = {2: 0x0800, 24: 0x86DD, 28: 0x86DD, 30: 0x86DD}  # loopback AF_ -> ethertype
+_V6_SKIP = (0, 43, 60)  # extension headers of (len + 1) * 8 bytes
+
+# IPv4: version/IHL, total length, identification, flags/offset, protocol, source, destination
+_V4 = struct.Struct("!BxHHHxBxx4s4s").unpack_from
+# IPv6: version/class, payload length, next header, source, destination
+_V6 = struct.Struct("!BxxxHBx16s16s").unpack_from
+_V6_FRAG = struct.Struct("!HI").unpack_from  # offset/M, identification
+_TCP = struct.Struct("!HHIIBB").unpack_from  # ports, seq, ack, data offset, flags
+_UDP = struct.Struct("!HHH").unpack_from  # ports, length
+_U32_LE = struct.Struct("<I").unpack_from
+_U32_BE = struct.Struct(">I").unpack_from
+
+
+class Decoder:
+    """Decodes frames to ``Packet``; one per capture (it holds the
+    fragments in progress). See the module docstring for the counters."""
+
+    def __init__(self, defrag: Defragmenter | None = None):
+        self.defrag = defrag if defrag is not None else Defragmenter()
+        self._counts = dict.fromkeys(COUNTERS, 0)
+
+    @property
+    def counters(self) -> dict[str, int]:
+        """A snapshot of the counters, the defragmenter's prefixed ``frag_``."""
+        out = dict(self._counts)
+        for name, value in self.defrag.counters.items():
+            out["frag_" + name] = value
+        return out
+
+    def decode(self, frame_no: int, ts: float, linktype: int, buf: bytes) -> Packet | None:
+        """Decode one frame; ``None`` (counted) unless it is TCP or UDP."""
+        c = self._counts
+        c["frames"] += 1
+        try:
+            # -- link layer: find the ethertype and where IP starts --------
+            if linktype == 1:
+                et = buf[12] << 8 | buf[13]
+                off = 14
+                while et in _VLAN_TPIDS:
+                    et = buf[off + 2] << 8 | buf[off + 3]
+                    off += 4
+            elif linktype in _RAW_IP:
+                version = buf[0] >> 4
+                et = 0x0800 if version == 4 else 0x86DD if version == 6 else -1
+                off = 0
+            elif linktype == 113:
+                et = buf[14] << 8 | buf[15]
+                off = 16
+                while et in _VLAN_TPIDS:
+                    et = buf[off + 2] << 8 | buf[off + 3]
+                    off += 4
+            elif linktype == 276:
+                if len(buf) < 20:
+                    raise IndexError
+                et = buf[0] << 8 | buf[1]
+                off = 20
+            elif linktype == 228:
+                et, off = 0x0800, 0
+            elif linktype == 229:
+                et, off = 0x86DD, 0
+            elif linktype == 0:
+                family = _U32_LE(buf, 0)[0]
+                if family > 0xFFFF:  # written by a big-endian host
+                    family = _U32_BE(buf, 0)[0]
+                et = _IP_FAMILY.get(family, 0)
+                off = 4
+            elif linktype == 108:
+                et = _IP_FAMILY.get(_U32_BE(buf, 0)[0], 0)
+                off = 4
+            else:
+                c["unknown_link"] += 1
+                return None
+
+            # -- IP --------------------------------------------------------
+            if et == 0x0800:
+                vihl, total, ident, fragw, proto, src, dst = _V4(buf, off)
+                ihl = (vihl & 15) << 2
+                if vihl >> 4 != 4 or ihl < 20 or total < ihl or off + total > len(buf):
+                    c["malformed"] += 1
+                    return None
+                l4 = off + ihl
+                end = off + total
+                if fragw & 0x3FFF:
+                    c["fragments"] += 1
+                    buf = self.defrag.add_v4(src, dst, proto, ident, (fragw & 0x1FFF) << 3,
+                                             fragw & 0x2000 != 0, buf[l4:end], ts)
+                    if buf is None:
+                        return None
+                    l4 = 0
+                    end = len(buf)
+            elif et == 0x86DD:
+                vtc, plen, proto, src, dst = _V6(buf, off)
+                end = off + 40 + plen
+                if vtc >> 4 != 6 or end > len(buf):
+                    c["malformed"] += 1
+                    return None
+                l4 = off + 40
+                reassembled = False
+                while proto != 6 and proto != 17:
+                    if proto in _V6_SKIP or proto == 51:
+                        if l4 + 8 > end:
+                            c["malformed"] += 1
+                            return None
+                        if proto == 51:
+                            size = (buf[l4 + 1] + 2) << 2
+                        else:
+                            size = (buf[l4 + 1] + 1) << 3
+                        proto = buf[l4]
+                        l4 += size
+                        if l4 > end:
+                            c["malformed"] += 1
+                            return None
+                    elif proto == 44:
+                        if l4 + 8 > end or reassembled:
+                            c["malformed"] += 1
+                            return None
+                        offw, ident = _V6_FRAG(buf, l4 + 2)
+                        if offw & 0xFFF9 == 0:  # atomic fragment: offset 0, M = 0
+                            proto = buf[l4]
+                            l4 += 8
+                            continue
+                        c["fragments"] += 1
+                        got = self.defrag.add_v6(src, dst, ident, buf[l4], offw & 0xFFF8,
+                                                 offw & 1 == 1, buf[l4 + 8:end], ts)
+                        if got is None:
+                            return None
+                        proto, buf = got
+                        l4 = 0
+                        end = len(buf)
+                        reassembled = True
+                    else:
+                        c["other_ip"] += 1
+                        return None
+            else:
+                c["not_ip" if et >= 0 else "malformed"] += 1
+                return None
+
+            # -- TCP / UDP -------------------------------------------------
+            if proto == 6:
+                if end - l4 < 20:
+                    c["malformed"] += 1
+                    return None
+                sport, dport, seq, ack, doff, flags = _TCP(buf, l4)
+                doff = (doff >> 4) << 2
+                if doff < 20 or l4 + doff > end:
+                    c["malformed"] += 1
+                    return None
+                c["decoded"] += 1
+                return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
+                                     buf[l4 + doff:end], frame_no, ts))
+            if proto == 17:
+                if end - l4 < 8:
+                    c["malformed"] += 1
+                    return None
+                sport, dport, ulen = _UDP(buf, l4)
+                if ulen < 8 or ulen > end - l4:
+                    c["malformed"] += 1
+                    return None
+                c["decoded"] += 1
+                return _new(Packet, (17, src, dst, sport, dport, 0, 0, 0,
+                                     buf[l4 + 8:l4 + ulen], frame_no, ts))
+            c["other_ip"] += 1
+            return None
+        except (IndexError, struct.error):
+            c["malformed"] += 1
+            return None
