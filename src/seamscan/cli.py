@@ -175,7 +175,10 @@ def cmd_scan(args) -> int:
     options = replay.ReplayOptions(hold_bytes=args.hold_bytes, hold_total=args.hold_total,
                                    max_flows=args.max_flows, tcp_idle=args.tcp_idle,
                                    udp_idle=args.udp_idle)
-    out = open(args.output, "w", encoding="utf-8", newline="") if args.output else sys.stdout
+    try:
+        out = open(args.output, "w", encoding="utf-8", newline="") if args.output else sys.stdout
+    except OSError as err:
+        return _fail(f"{args.output}: cannot write: {err.strerror}", EXIT_USAGE)
     fmt = args.format or ("table" if out is sys.stdout and sys.stdout.isatty() else "jsonl")
     labels = dict(zip(table.ids, table.labels, strict=True))
     writer = records.make_writer(fmt, out, show_clean=args.show_clean, labels=labels) \
@@ -264,8 +267,11 @@ def cmd_compile(args) -> int:
         print(size_report(table, elapsed, args.budget))
         return _fail(f"the {table.layout} table ({table.nbytes:,} bytes) does not fit the budget "
                      f"of {args.budget:,} bytes", EXIT_USAGE)
-    with open(args.output, "wb") as f:
-        f.write(table.to_bytes())
+    try:
+        with open(args.output, "wb") as f:
+            f.write(table.to_bytes())
+    except OSError as err:
+        return _fail(f"{args.output}: cannot write: {err.strerror}", EXIT_USAGE)
     print(size_report(table, elapsed, args.budget))
     print(f"wrote {args.output}")
     return EXIT_OK
