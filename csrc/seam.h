@@ -32,6 +32,7 @@ extern "C" {
 
 #define SS_FORMAT_VERSION 1u
 #define SS_LAYOUT_DENSE 1u
+#define SS_LAYOUT_COMPACT 2u
 
 /* Error codes returned by ss_load (0 is success). */
 #define SS_OK 0
@@ -67,6 +68,11 @@ typedef struct {
     const uint8_t *out_list;  /* out_width bytes per entry */
     const uint8_t *sigs;      /* 20-byte signature records */
     const uint8_t *ports;     /* u16 per entry */
+    const uint8_t *words;     /* compact: u16 per state */
+    const uint8_t *root;      /* compact: the start state's full row */
+    const uint8_t *fail_rank, *fail_list;
+    const uint8_t *extra_rank, *extra_index, *extra_list;
+    const uint8_t *own_rank;
     uint32_t size;
     uint32_t layout;
     uint32_t states;

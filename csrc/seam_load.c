@@ -8,6 +8,7 @@
 #include <string.h>
 
 #include "seam.h"
+#include "seam_int.h"
 #include "seam_le.h"
 
 typedef char ss_state_is_16_bytes[(sizeof(ss_state) == 16) ? 1 : -1];
@@ -61,7 +62,7 @@ const char *ss_strerror(int code)
 }
 
 /* Find section `kind`; its offset and size are already bounds-checked. */
-static const uint8_t *section(const uint8_t *img, uint32_t nsec, uint32_t kind, uint32_t *size)
+const uint8_t *ss__section(const uint8_t *img, uint32_t nsec, uint32_t kind, uint32_t *size)
 {
     uint32_t i;
     for (i = 0; i < nsec; i++) {
@@ -186,7 +187,7 @@ int ss_load(ss_table *t, const void *image, size_t size)
     if (ss_crc32(img + 16, isize - 16u) != ss_ld32(img + 12))
         return SS_ERR_CRC;
     t->layout = ss_ld16(img + 6);
-    if (t->layout != SS_LAYOUT_DENSE)
+    if (t->layout != SS_LAYOUT_DENSE && t->layout != SS_LAYOUT_COMPACT)
         return SS_ERR_LAYOUT;
 
     t->image = img;
@@ -213,25 +214,28 @@ int ss_load(ss_table *t, const void *image, size_t size)
     rc = check_sections(img, isize, nsec);
     if (rc != SS_OK)
         return rc;
-    t->classes = section(img, nsec, SEC_CLASSES, &s_cls);
-    t->trans = section(img, nsec, SEC_DENSE, &s_trans);
-    t->out_index = section(img, nsec, SEC_OUT_INDEX, &s_oidx);
-    t->out_list = section(img, nsec, SEC_OUT_LIST, &s_olist);
-    t->sigs = section(img, nsec, SEC_SIGS, &s_sigs);
-    t->ports = section(img, nsec, SEC_PORTS, &s_ports);
-    if (!t->classes || !t->trans || !t->out_index || !t->out_list || !t->sigs || !t->ports ||
-        s_cls != 256u)
+    t->classes = ss__section(img, nsec, SEC_CLASSES, &s_cls);
+    t->out_index = ss__section(img, nsec, SEC_OUT_INDEX, &s_oidx);
+    t->out_list = ss__section(img, nsec, SEC_OUT_LIST, &s_olist);
+    t->sigs = ss__section(img, nsec, SEC_SIGS, &s_sigs);
+    t->ports = ss__section(img, nsec, SEC_PORTS, &s_ports);
+    if (!t->classes || !t->out_index || !t->out_list || !t->sigs || !t->ports || s_cls != 256u)
         return SS_ERR_SECTION;
     t->nports = s_ports / 2u;
 
     for (b = 0; b < 256u; b++)
         if (t->classes[b] >= t->nclasses)
             return SS_ERR_CLASSES;
-    rc = check_dense(t, s_trans);
-    if (rc == SS_OK)
-        rc = check_sigs(t, s_sigs, s_ports);
-    if (rc == SS_OK)
-        rc = check_outputs(t, s_oidx, s_olist, want_max);
+    rc = check_sigs(t, s_sigs, s_ports);
+    if (rc == SS_OK && t->layout == SS_LAYOUT_DENSE) {
+        t->trans = ss__section(img, nsec, SEC_DENSE, &s_trans);
+        rc = t->trans ? check_dense(t, s_trans) : SS_ERR_SECTION;
+        if (rc == SS_OK)
+            rc = check_outputs(t, s_oidx, s_olist, want_max);
+    } else if (rc == SS_OK) {
+        t->max_outputs = want_max; /* compact: bounded again when emitting */
+        rc = ss__check_compact(t, img, nsec);
+    }
     if (rc != SS_OK)
         memset(t, 0, sizeof *t);
     return rc;

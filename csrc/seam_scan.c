@@ -1,28 +1,20 @@
 /*
- * seam_scan.c - the hot path: walk the dense automaton, report matches.
+ * seam_scan.c - the hot path: walk the dense automaton, report matches;
+ * the per-signature filters; the batch scheduler.
  *
- * One table lookup per byte: next = trans[state * stride + class[byte]].
- * States >= first_match have outputs; reaching one calls emit(), which
- * applies each signature's side / transport / ports / window / datagram
- * filters.  The batch entry point walks up to four flow sides in one loop
- * (independent lookups overlap their memory latency).
+ * Dense: one table lookup per byte, next = trans[state * stride + class].
+ * States >= first_match have outputs; reaching one calls emit(), and each
+ * signature passes ss__emit_sig's side / transport / ports / window /
+ * datagram filters.  The batch entry point walks LANES flow sides in one
+ * loop (independent lookups overlap their memory latency).  The compact
+ * layout's walk is in seam_compact.c.
  */
 #include <string.h>
 
 #include "seam.h"
 #include "seam_le.h"
 
-#define SIG_RECORD 20u
-
-/* Where a scan stands: the state, the offset of the next byte, and the
- * offset where the current datagram began (for datagram-scoped matches). */
-typedef struct {
-    uint32_t state;
-    uint64_t offset;
-    uint64_t unit_start;
-    const ss_ctx *ctx;
-    uint32_t item;
-} lane;
+#include "seam_int.h"
 
 static int port_listed(const ss_table *t, uint32_t first, uint32_t n, uint32_t port)
 {
@@ -33,43 +25,48 @@ static int port_listed(const ss_table *t, uint32_t first, uint32_t n, uint32_t p
     return 0;
 }
 
-/* Append the matches of match state `s` ending at stream offset `end`. */
+size_t ss__emit_sig(const ss_table *t, uint32_t sig, uint64_t end, const lane *ln,
+                    ss_match *out, size_t n)
+{
+    const ss_ctx *ctx = ln->ctx;
+    const uint8_t *r = t->sigs + (size_t)SS__SIG_RECORD * sig;
+    uint32_t len = ss_ld16(r + 4), nports = ss_ld16(r + 6);
+    uint64_t start, base = 0;
+    if (end < len || n >= ln->cap)
+        return n; /* cannot happen with a well-formed table and cap */
+    start = end - len;
+    if (ctx->side && r[0] && r[0] != ctx->side)
+        return n;
+    if (ctx->transport && r[1] && r[1] != ctx->transport)
+        return n;
+    if (nports && (ctx->flags & SS_CTX_HAS_PORT) &&
+        !port_listed(t, ss_ld32(r + 8), nports, ctx->server_port))
+        return n;
+    if ((r[2] & SS_SIG_DATAGRAM) && (ctx->flags & SS_CTX_DATAGRAM)) {
+        if (start < ln->unit_start)
+            return n;
+        base = ln->unit_start;
+    }
+    if ((r[2] & SS_SIG_HAS_WINDOW) &&
+        (start - base < ss_ld32(r + 12) || end - base > ss_ld32(r + 16)))
+        return n;
+    out[n].item = ln->item;
+    out[n].sig = sig;
+    out[n].start = start;
+    out[n].end = end;
+    return n + 1;
+}
+
+/* Append the matches of dense match state `s` ending at stream offset `end`. */
 static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, ss_match *out,
                    size_t n)
 {
-    const ss_ctx *ctx = ln->ctx;
     uint32_t m = s - t->first_match;
     uint32_t k = ss_ld32(t->out_index + 4u * m), stop = ss_ld32(t->out_index + 4u * (m + 1u));
-    for (; k < stop; k++) {
-        uint32_t sig = t->out_width == 2u ? ss_ld16(t->out_list + 2u * k)
-                                          : ss_ld32(t->out_list + 4u * k);
-        const uint8_t *r = t->sigs + (size_t)SIG_RECORD * sig;
-        uint32_t len = ss_ld16(r + 4), nports = ss_ld16(r + 6);
-        uint64_t start, base = 0;
-        if (end < len)
-            continue; /* cannot happen with a well-formed table: never underflow */
-        start = end - len;
-        if (ctx->side && r[0] && r[0] != ctx->side)
-            continue;
-        if (ctx->transport && r[1] && r[1] != ctx->transport)
-            continue;
-        if (nports && (ctx->flags & SS_CTX_HAS_PORT) &&
-            !port_listed(t, ss_ld32(r + 8), nports, ctx->server_port))
-            continue;
-        if ((r[2] & SS_SIG_DATAGRAM) && (ctx->flags & SS_CTX_DATAGRAM)) {
-            if (start < ln->unit_start)
-                continue;
-            base = ln->unit_start;
-        }
-        if ((r[2] & SS_SIG_HAS_WINDOW) &&
-            (start - base < ss_ld32(r + 12) || end - base > ss_ld32(r + 16)))
-            continue;
-        out[n].item = ln->item;
-        out[n].sig = sig;
-        out[n].start = start;
-        out[n].end = end;
-        n++;
-    }
+    for (; k < stop; k++)
+        n = ss__emit_sig(t, t->out_width == 2u ? ss_ld16(t->out_list + 2u * k)
+                                               : ss_ld32(t->out_list + 4u * k),
+                         end, ln, out, n);
     return n;
 }
 
@@ -154,6 +151,8 @@ DEFINE_SCANL(scanl_w4, LOAD4, 4u)
 static size_t scan1(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
                     size_t cap, size_t *nout)
 {
+    if (t->layout == SS_LAYOUT_COMPACT)
+        return ss__scan_compact(t, ln, p, len, out, cap, nout);
     if (t->trans_width == 1u)
         return scan1_w1(t, ln, p, len, out, cap, nout);
     if (t->trans_width == 2u)
@@ -187,6 +186,7 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
     ln.unit_start = st->offset - st->unit;
     ln.ctx = ctx ? ctx : &none;
     ln.item = 0;
+    ln.cap = cap;
     done = scan1(t, &ln, data, len, out, cap, nout);
     st->state = ln.state;
     st->offset = ln.offset;
@@ -197,7 +197,7 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
 /* Make item `it` ready to scan: apply its reset (idempotent while nothing
  * of it has been scanned) and fill its lane. */
 static void begin(const ss_table *t, ss_state *states, const ss_item *it, uint32_t index,
-                  lane *ln)
+                  size_t cap, lane *ln)
 {
     ss_state *st = &states[it->slot];
     if ((it->flags & SS_ITEM_RESET) && it->done == 0)
@@ -209,6 +209,7 @@ static void begin(const ss_table *t, ss_state *states, const ss_item *it, uint32
     ln->unit_start = st->offset - it->done;
     ln->ctx = &it->ctx;
     ln->item = index;
+    ln->cap = cap;
 }
 
 static void finish(ss_state *states, ss_item *it, const lane *ln)
@@ -255,7 +256,7 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
                     break;
             if (b < LANES)
                 break; /* its slot is busy: wait */
-            begin(t, states, it, (uint32_t)next, &ln[k]);
+            begin(t, states, it, (uint32_t)next, cap, &ln[k]);
             if (it->done >= it->len) { /* nothing to scan (e.g. a reset alone) */
                 finish(states, it, &ln[k]);
                 next++;
@@ -268,7 +269,7 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
         }
         if (active == 0)
             break;
-        if (active == LANES) {
+        if (active == LANES && t->layout == SS_LAYOUT_DENSE) {
             size_t m = IDLE, got;
             for (k = 0; k < LANES; k++) {
                 size_t rest = items[held[k]].len - items[held[k]].done;
@@ -290,7 +291,8 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
                 }
             }
         } else {
-            /* Too few items to fill the lanes: run the oldest lane alone. */
+            /* Too few items to fill the lanes (or a layout without the
+             * interleaved walk): run the oldest lane alone. */
             size_t oldest = 0;
             ss_item *it;
             for (k = 1; k < LANES; k++)

@@ -14,7 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 # Layouts every engine test runs over; a new layout joins by being added here.
-LAYOUTS = ["dense"]
+LAYOUTS = ["dense", "compact"]
 
 
 @dataclass(frozen=True)

@@ -15,6 +15,9 @@ CDEF = """
 typedef struct {
     const uint8_t *image; const uint8_t *classes; const uint8_t *trans;
     const uint8_t *out_index; const uint8_t *out_list; const uint8_t *sigs; const uint8_t *ports;
+    const uint8_t *words; const uint8_t *root; const uint8_t *fail_rank; const uint8_t *fail_list;
+    const uint8_t *extra_rank; const uint8_t *extra_index; const uint8_t *extra_list;
+    const uint8_t *own_rank;
     uint32_t size, layout, states, first_match, nsigs, nclasses, stride, trans_width,
              out_width, max_outputs, max_len, nports;
 } ss_table;
@@ -41,7 +44,7 @@ ffibuilder.cdef(CDEF)
 ffibuilder.set_source(
     "seamscan._seamcore",
     '#include "seam.h"',
-    sources=[str(p.relative_to(ROOT)) for p in (CSRC / "seam_load.c", CSRC / "seam_scan.c")],
+    sources=[str(p.relative_to(ROOT)) for p in sorted(CSRC.glob("seam_*.c"))],
     include_dirs=[str(CSRC.relative_to(ROOT))],
     extra_compile_args=["-O3", "-std=c99"],
 )

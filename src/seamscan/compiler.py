@@ -60,6 +60,7 @@ class Automaton:
     fail: np.ndarray  # (states,) uint32
     depth: np.ndarray  # (states,) uint32
     max_len: int
+    unique_nodes: list[int]  # per pattern: trie nodes no other pattern uses (states its removal saves, for plain literals)
 
     @property
     def states(self) -> int:
@@ -102,10 +103,13 @@ def build(patterns: Sequence[Sequence[frozenset[int]]], *, max_states: int = DEF
     labels: list[dict[frozenset[int], int]] = [{}]
     terminal: list[tuple[int, ...]] = [()]
     owner: list[int] = [-1]
+    users: list[int] = [0]
+    paths: list[list[int]] = []
     for index, pattern in enumerate(patterns):
         if not pattern:
             raise CompileError(f"signature #{index + 1} is empty")
         node = 0
+        path = []
         for byte_set in pattern:
             label = frozenset(classes[b] for b in byte_set)
             child = labels[node].get(label)
@@ -115,11 +119,17 @@ def build(patterns: Sequence[Sequence[frozenset[int]]], *, max_states: int = DEF
                 labels.append({})
                 terminal.append(())
                 owner.append(index)
+                users.append(0)
                 labels[node][label] = child
                 for c in label:
                     edges[node].setdefault(c, []).append(child)
             node = child
+            if not path or path[-1] != node:
+                users[node] += 1
+            path.append(node)
+        paths.append(path)
         terminal[node] += (index,)
+    unique = [sum(1 for node in path if users[node] == 1) for path in paths]
 
     # Breadth-first subset construction; see the module docstring.
     capacity = max(1024, len(edges) + 16)
@@ -196,7 +206,7 @@ def build(patterns: Sequence[Sequence[frozenset[int]]], *, max_states: int = DEF
     outputs = [out[i] for i in order[first_match:].tolist()]
     return Automaton(classes=classes, nclasses=ncls, trans=trans, first_match=first_match,
                      outputs=outputs, fail=fail_arr, depth=depth_arr,
-                     max_len=max(len(p) for p in patterns))
+                     max_len=max(len(p) for p in patterns), unique_nodes=unique)
 
 
 def _too_many_states(max_states, tops, owner, patterns, names) -> CompileError:

@@ -11,7 +11,7 @@ import re
 import struct
 from typing import NamedTuple
 
-from seamscan import compiler, image
+from seamscan import compact, compiler, image
 from seamscan._seamcore import ffi, lib
 from seamscan.image import TableError
 
@@ -48,28 +48,60 @@ def parse_size(value) -> int:
     return int(m.group(1)) * _UNITS[m.group(2).lower() if m.group(2) else None]
 
 
+ENCODERS = {"dense": image.encode_dense, "compact": compact.encode_compact}
+AUTO_ORDER = ("dense", "compact")  # fastest first
+
+
 def compile(sigset, layout: str = "dense", budget=None, *,
             max_states: int = compiler.DEFAULT_MAX_STATES) -> Table:
     """Compile a :class:`~seamscan.signatures.SignatureSet` into a table.
 
-    ``layout`` is ``"dense"`` (more layouts arrive with the device tables).
+    ``layout``: ``"dense"`` (one lookup per byte), ``"compact"`` (own
+    transitions and failure links: a few bytes per state, at most two steps
+    per byte amortised) or ``"auto"`` (the fastest that fits ``budget``).
     ``budget`` (bytes, or text like ``"32KiB"``) is the most the image may
-    take; a larger image is a :class:`~seamscan.compiler.CompileError`.
+    take; when no candidate fits, :class:`~seamscan.compiler.CompileError`
+    says what each takes and which signatures cost the most states.
     """
-    if layout not in image.LAYOUTS:
+    if layout not in (*ENCODERS, "auto"):
         raise compiler.CompileError(
-            f"layout {layout!r} is not available; this version has: {', '.join(image.LAYOUTS)}")
+            f"layout {layout!r} is not available; choose one of: {', '.join(ENCODERS)}, auto")
     sigs = list(sigset)
     automaton = compiler.build([s.byte_sets() for s in sigs], max_states=max_states,
                                names=[s.id for s in sigs])
-    blob = image.encode_dense(automaton, sigs)
-    if budget is not None and len(blob) > parse_size(budget):
-        raise compiler.CompileError(
-            f"the {layout} table takes {len(blob):,} bytes, over the budget of "
-            f"{parse_size(budget):,} bytes")
-    table = Table.from_bytes(blob)
-    table.signatures = sigset
-    return table
+    limit = None if budget is None else parse_size(budget)
+    sizes = {}
+    for name in AUTO_ORDER if layout == "auto" else (layout,):
+        blob = ENCODERS[name](automaton, sigs)
+        sizes[name] = len(blob)
+        if limit is None or len(blob) <= limit:
+            table = Table.from_bytes(blob)
+            table.signatures = sigset
+            table.automaton = automaton
+            return table
+    raise BudgetError(limit, sizes, automaton, sigs)
+
+
+class BudgetError(compiler.CompileError):
+    """No layout fits the budget; carries the sizes and the costliest signatures."""
+
+    def __init__(self, limit, sizes, automaton, sigs):
+        self.limit = limit
+        self.sizes = sizes
+        self.costliest = costliest_signatures(automaton, sigs, sizes)
+        tried = ", ".join(f"{name} takes {size:,} bytes" for name, size in sizes.items())
+        worst = "; ".join(f"{sid} ({states} states, about {saved:,} bytes)"
+                          for sid, states, saved in self.costliest[:5])
+        super().__init__(f"no layout fits the budget of {limit:,} bytes: {tried}. The signatures "
+                         f"costing the most states, and what dropping each would save: {worst}")
+
+
+def costliest_signatures(automaton, sigs, sizes) -> list[tuple[str, int, int]]:
+    """(id, states only it needs, bytes dropping it would save in the smallest layout)."""
+    per_state = min(sizes.values()) / max(1, automaton.states)
+    ranked = sorted(zip(automaton.unique_nodes, range(len(sigs)), strict=True),
+                    key=lambda p: (-p[0], p[1]))
+    return [(sigs[i].id, n, round(n * per_state)) for n, i in ranked]
 
 
 class Table:
@@ -87,6 +119,7 @@ class Table:
         self.ids, self.labels = image.read_names(self._blob, self.header)
         self.lengths = image.signature_lengths(self._blob, self.header)
         self.signatures = None  # the SignatureSet, when compiled here
+        self.automaton = None  # the compiler's automaton, when compiled here
         self._cap = max(_BUFFER_MATCHES, 8 * self._t.max_outputs)
 
     @classmethod

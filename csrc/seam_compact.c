@@ -1,0 +1,244 @@
+/*
+ * seam_compact.c - the compact layout: own transitions plus a default link.
+ *
+ * Each state keeps only the transitions on which it differs from its
+ * failure state, and the failure link; the start state keeps a full row.
+ * A byte costs one step per state visited: labelled transitions go one
+ * level deeper, failure links at least one shallower, so n bytes cost at
+ * most 2n steps.  FORMAT.md gives the sections; `rank sets` (a count per 64
+ * states and a 64-bit map) select the states that store a failure link,
+ * further transitions, or outputs of their own.
+ */
+#include <string.h>
+
+#include "seam_int.h"
+#include "seam_le.h"
+
+enum {
+    SEC_OUT_INDEX = 3, SEC_OUT_LIST = 4, SEC_WORDS = 8, SEC_ROOT, SEC_FAIL_RANK, SEC_FAIL_LIST,
+    SEC_EXTRA_RANK, SEC_EXTRA_INDEX, SEC_EXTRA_LIST, SEC_OWN_RANK
+};
+
+#define W_CHILD 0x100u     /* s + 1 is entered from s on class (word[s + 1] & 0xff) */
+#define W_FAIL_ROOT 0x200u /* failure state = start row[class of the edge into s] */
+#define W_MATCH 0x400u     /* s has outputs, its own or its failure chain's */
+#define RANK_ENTRY 12u     /* u32 count before the block, u64 map */
+
+static uint32_t ld_w(const uint8_t *p, uint32_t w)
+{
+    return w == 1u ? p[0] : w == 2u ? ss_ld16(p) : ss_ld32(p);
+}
+
+static unsigned pop64(uint64_t x)
+{
+    x = x - ((x >> 1) & 0x5555555555555555u);
+    x = (x & 0x3333333333333333u) + ((x >> 2) & 0x3333333333333333u);
+    x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Fu;
+    return (unsigned)((x * 0x0101010101010101u) >> 56);
+}
+
+/* Is s in the rank set?  If so, *r = its index among the members. */
+static int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
+{
+    const uint8_t *e = set + RANK_ENTRY * (s >> 6);
+    uint64_t map = (uint64_t)ss_ld32(e + 4) | ((uint64_t)ss_ld32(e + 8) << 32);
+    uint32_t k = s & 63u;
+    if (!((map >> k) & 1u))
+        return 0;
+    *r = ss_ld32(e) + pop64(map & (((uint64_t)1 << k) - 1u));
+    return 1;
+}
+
+static uint32_t word(const ss_table *t, uint32_t s)
+{
+    return ss_ld16(t->words + 2u * s);
+}
+
+static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w)
+{
+    uint32_t r;
+    if (rank_of(t->fail_rank, s, &r))
+        return ld_w(t->fail_list + (size_t)r * t->trans_width, t->trans_width);
+    return (w & W_FAIL_ROOT) ? ld_w(t->root + (size_t)(w & 0xFFu) * t->trans_width, t->trans_width)
+                             : 0u;
+}
+
+/* One byte (class c) from state s.  A valid image needs at most max_len
+ * failure steps; a damaged one is cut off there and restarts at the start
+ * state, so scanning always ends. */
+static uint32_t step(const ss_table *t, uint32_t s, uint32_t c)
+{
+    const uint32_t tw = t->trans_width;
+    uint32_t guard = t->max_len + 1u, r;
+    while (s != 0 && guard--) {
+        uint32_t w = word(t, s);
+        if ((w & W_CHILD) && (word(t, s + 1u) & 0xFFu) == c)
+            return s + 1u;
+        if (rank_of(t->extra_rank, s, &r)) {
+            uint32_t e = ld_w(t->extra_index + (size_t)r * t->out_width, t->out_width);
+            uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * t->out_width, t->out_width);
+            for (; e < stop; e++) {
+                const uint8_t *x = t->extra_list + (size_t)e * (1u + tw);
+                if (x[0] == c)
+                    return ld_w(x + 1, tw);
+            }
+        }
+        s = fail_of(t, s, w);
+    }
+    return ld_w(t->root + (size_t)c * tw, tw);
+}
+
+/* The matches of state s ending at `end`: its own outputs and those along
+ * its failure chain, then put in signature order. */
+static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, ss_match *out,
+                   size_t n)
+{
+    const uint32_t ow = t->out_width;
+    size_t first = n, i, j;
+    uint32_t guard = t->max_len + 1u, r;
+    while (s != 0 && guard--) {
+        uint32_t w = word(t, s);
+        if (!(w & W_MATCH))
+            break;
+        if (rank_of(t->own_rank, s, &r)) {
+            uint32_t k = ld_w(t->out_index + (size_t)r * ow, ow);
+            uint32_t stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
+            for (; k < stop; k++)
+                n = ss__emit_sig(t, ld_w(t->out_list + (size_t)k * ow, ow), end, ln, out, n);
+        }
+        s = fail_of(t, s, w);
+    }
+    for (i = first + 1; i < n; i++) { /* insertion sort: a few entries */
+        ss_match m = out[i];
+        for (j = i; j > first && out[j - 1].sig > m.sig; j--)
+            out[j] = out[j - 1];
+        out[j] = m;
+    }
+    return n;
+}
+
+size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
+                        ss_match *out, size_t cap, size_t *nout)
+{
+    const uint8_t *cls = t->classes;
+    uint32_t s = ln->state;
+    size_t i = 0, n = *nout;
+    while (i < len) {
+        uint32_t ns = step(t, s, cls[p[i]]);
+        if (word(t, ns) & W_MATCH) {
+            if (n + t->max_outputs > cap)
+                break;
+            n = emit(t, ns, ln->offset + i + 1u, ln, out, n);
+        }
+        s = ns;
+        i++;
+    }
+    ln->state = s;
+    ln->offset += i;
+    *nout = n;
+    return i;
+}
+
+/* ---- loading ---------------------------------------------------------- */
+
+/* A rank set over `states` entries: counts consistent, no bit past the end.
+ * Returns the member count, or -1. */
+static long check_rank(const uint8_t *set, uint32_t size, uint32_t states)
+{
+    uint32_t blocks = (states + 63u) / 64u, b, count = 0;
+    if ((uint64_t)size != (uint64_t)RANK_ENTRY * blocks)
+        return -1;
+    for (b = 0; b < blocks; b++) {
+        const uint8_t *e = set + RANK_ENTRY * b;
+        uint64_t map = (uint64_t)ss_ld32(e + 4) | ((uint64_t)ss_ld32(e + 8) << 32);
+        uint32_t valid = states - 64u * b;
+        if (ss_ld32(e) != count || (valid < 64u && (map >> valid) != 0))
+            return -1;
+        count += pop64(map);
+    }
+    return (long)count;
+}
+
+/* An index of `members + 1` entries of width w: 0, non-decreasing, ending at `total`. */
+static int check_index(const uint8_t *ix, uint32_t size, uint32_t w, uint64_t members,
+                       uint64_t total)
+{
+    uint64_t k;
+    uint32_t prev = 0;
+    if ((uint64_t)size != (members + 1u) * w || ld_w(ix, w) != 0)
+        return 0;
+    for (k = 1; k <= members; k++) {
+        uint32_t v = ld_w(ix + k * w, w);
+        if (v < prev)
+            return 0;
+        prev = v;
+    }
+    return prev == total;
+}
+
+int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
+{
+    uint32_t sz[8], s, c, k, tw = t->trans_width, ow = t->out_width;
+    long nfail, nextra, nown;
+    uint64_t entries, outs;
+    t->words = ss__section(img, nsec, SEC_WORDS, &sz[0]);
+    t->root = ss__section(img, nsec, SEC_ROOT, &sz[1]);
+    t->fail_rank = ss__section(img, nsec, SEC_FAIL_RANK, &sz[2]);
+    t->fail_list = ss__section(img, nsec, SEC_FAIL_LIST, &sz[3]);
+    t->extra_rank = ss__section(img, nsec, SEC_EXTRA_RANK, &sz[4]);
+    t->extra_index = ss__section(img, nsec, SEC_EXTRA_INDEX, &sz[5]);
+    t->extra_list = ss__section(img, nsec, SEC_EXTRA_LIST, &sz[6]);
+    t->own_rank = ss__section(img, nsec, SEC_OWN_RANK, &sz[7]);
+    if (!t->words || !t->root || !t->fail_rank || !t->fail_list || !t->extra_rank ||
+        !t->extra_index || !t->extra_list || !t->own_rank || t->first_match != t->states ||
+        (uint64_t)sz[0] != 2u * (uint64_t)t->states ||
+        (uint64_t)sz[1] != (uint64_t)tw * t->nclasses)
+        return SS_ERR_SECTION;
+    nfail = check_rank(t->fail_rank, sz[2], t->states);
+    nextra = check_rank(t->extra_rank, sz[4], t->states);
+    nown = check_rank(t->own_rank, sz[7], t->states);
+    if (nfail < 0 || nextra < 0 || nown < 0 || (uint64_t)sz[3] != (uint64_t)nfail * tw ||
+        sz[6] % (1u + tw) != 0)
+        return SS_ERR_SECTION;
+    for (c = 0; c < t->nclasses; c++)
+        if (ld_w(t->root + (size_t)c * tw, tw) >= t->states)
+            return SS_ERR_TRANS;
+    for (s = 0; s < t->states; s++) {
+        uint32_t w = word(t, s);
+        if ((w & 0xFFu) >= t->nclasses || (w & ~0x7FFu) != 0 ||
+            ((w & W_CHILD) && s + 1u >= t->states))
+            return SS_ERR_TRANS;
+    }
+    for (k = 0; k < (uint32_t)nfail; k++)
+        if (ld_w(t->fail_list + (size_t)k * tw, tw) >= t->states)
+            return SS_ERR_TRANS;
+    entries = sz[6] / (1u + tw);
+    if (!check_index(t->extra_index, sz[5], ow, (uint64_t)nextra, entries))
+        return SS_ERR_SECTION;
+    for (k = 0; k < entries; k++) {
+        const uint8_t *x = t->extra_list + (size_t)k * (1u + tw);
+        if (x[0] >= t->nclasses || ld_w(x + 1, tw) >= t->states)
+            return SS_ERR_TRANS;
+    }
+    {
+        uint32_t s_oidx, s_olist;
+        ss__section(img, nsec, SEC_OUT_INDEX, &s_oidx);
+        ss__section(img, nsec, SEC_OUT_LIST, &s_olist);
+        if (s_olist % ow != 0)
+            return SS_ERR_SECTION;
+        outs = s_olist / ow;
+        if (!check_index(t->out_index, s_oidx, ow, (uint64_t)nown, outs))
+            return SS_ERR_OUTPUTS;
+        for (k = 0; k < (uint32_t)nown; k++) {
+            uint32_t e = ld_w(t->out_index + (size_t)k * ow, ow);
+            uint32_t stop = ld_w(t->out_index + (size_t)(k + 1u) * ow, ow), last = 0;
+            for (; e < stop; e++) {
+                uint32_t sig = ld_w(t->out_list + (size_t)e * ow, ow);
+                if (sig >= t->nsigs || (e > ld_w(t->out_index + (size_t)k * ow, ow) && sig <= last))
+                    return SS_ERR_OUTPUTS;
+                last = sig;
+            }
+        }
+    }
+    return SS_OK;
+}
