@@ -72,7 +72,7 @@ typedef struct {
     const uint8_t *root;      /* compact: the start state's full row */
     const uint8_t *fail_rank, *fail_list;
     const uint8_t *extra_rank, *extra_index, *extra_list;
-    const uint8_t *own_rank;
+    const uint8_t *own_rank, *extra_filter;
     uint32_t size;
     uint32_t layout;
     uint32_t states;
@@ -85,6 +85,7 @@ typedef struct {
     uint32_t max_outputs; /* most outputs of any one state (verified at load) */
     uint32_t max_len;
     uint32_t nports;
+    uint32_t filter_log2; /* compact: bits in the transition filter, log2 */
 } ss_table;
 
 /* The state of one flow side: what a device keeps per flow side.
@@ -129,7 +130,8 @@ void ss_reset(ss_state *st, uint64_t offset);
 void ss_new_datagram(ss_state *st);
 
 /* Scan `len` bytes that follow st->offset in the stream.  Writes at most
- * `cap` matches to out[] (cap must be >= t->max_outputs), sets *nout, and
+ * `cap` matches to out[] (cap must be >= t->max_outputs, or no byte that
+ * completes a match can be consumed), sets *nout, and
  * returns the number of bytes consumed: less than `len` only when out[] is
  * full, in which case call again with the rest.  Matches come in the order
  * of their end offset, then signature index. */
@@ -156,7 +158,9 @@ typedef struct {
  * again with items + returned count (progress is kept in the items: .done,
  * and SS_ITEM_DONE in .flags).  Matches carry their item index (relative to
  * the `items` pointer passed) and come in each item's own order; items'
- * matches may interleave.  cap must be >= 8 * t->max_outputs. */
+ * matches may interleave.  cap must be >= t->max_outputs (with less, no
+ * byte that completes a match can be scanned: it returns having made no
+ * progress); cap >= 8 * t->max_outputs lets the lanes interleave. */
 size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
                      const uint8_t *data, ss_match *out, size_t cap, size_t *nout);
 

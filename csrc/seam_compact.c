@@ -16,21 +16,34 @@
 
 enum {
     SEC_OUT_INDEX = 3, SEC_OUT_LIST = 4, SEC_WORDS = 8, SEC_ROOT, SEC_FAIL_RANK, SEC_FAIL_LIST,
-    SEC_EXTRA_RANK, SEC_EXTRA_INDEX, SEC_EXTRA_LIST, SEC_OWN_RANK
+    SEC_EXTRA_RANK, SEC_EXTRA_INDEX, SEC_EXTRA_LIST, SEC_OWN_RANK, SEC_EXTRA_FILTER
 };
 
 #define W_CHILD 0x100u     /* s + 1 is entered from s on class (word[s + 1] & 0xff) */
 #define W_FAIL_ROOT 0x200u /* failure state = start row[class of the edge into s] */
 #define W_MATCH 0x400u     /* s has outputs, its own or its failure chain's */
+#define W_EXTRA 0x800u     /* s is in the transition rank set */
+#define W_FAILX 0x1000u    /* s is in the failure rank set (a stored link) */
+#define W_OWN 0x2000u      /* s is in the output rank set */
+#define W_ALL 0x3FFFu
 #define RANK_ENTRY 12u     /* u32 count before the block, u64 map */
 
-static uint32_t ld_w(const uint8_t *p, uint32_t w)
+#if defined(__GNUC__)
+#define SS_INLINE static inline __attribute__((always_inline))
+#else
+#define SS_INLINE static inline
+#endif
+
+SS_INLINE uint32_t ld_w(const uint8_t *p, uint32_t w)
 {
     return w == 1u ? p[0] : w == 2u ? ss_ld16(p) : ss_ld32(p);
 }
 
-static unsigned pop64(uint64_t x)
+SS_INLINE unsigned pop64(uint64_t x)
 {
+#if defined(__POPCNT__)
+    return (unsigned)__builtin_popcountll(x);
+#endif
     x = x - ((x >> 1) & 0x5555555555555555u);
     x = (x & 0x3333333333333333u) + ((x >> 2) & 0x3333333333333333u);
     x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Fu;
@@ -38,7 +51,7 @@ static unsigned pop64(uint64_t x)
 }
 
 /* Is s in the rank set?  If so, *r = its index among the members. */
-static int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
+SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
 {
     const uint8_t *e = set + RANK_ENTRY * (s >> 6);
     uint64_t map = (uint64_t)ss_ld32(e + 4) | ((uint64_t)ss_ld32(e + 8) << 32);
@@ -49,7 +62,20 @@ static int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
     return 1;
 }
 
-static uint32_t word(const ss_table *t, uint32_t s)
+/* The transition filter: one bit per hash of (state, class); every stored
+ * further transition has its bit set, so a clear bit means "none here". */
+SS_INLINE uint32_t filter_bit(uint32_t s, uint32_t c, uint32_t bits_log2)
+{
+    return (uint32_t)((((s << 8) | c) * 0x9E3779B1u) >> (32u - bits_log2));
+}
+
+SS_INLINE int filter_has(const ss_table *t, uint32_t s, uint32_t c)
+{
+    uint32_t h = filter_bit(s, c, t->filter_log2);
+    return (t->extra_filter[h >> 3] >> (h & 7u)) & 1u;
+}
+
+SS_INLINE uint32_t word(const ss_table *t, uint32_t s)
 {
     return ss_ld16(t->words + 2u * s);
 }
@@ -57,36 +83,47 @@ static uint32_t word(const ss_table *t, uint32_t s)
 static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w)
 {
     uint32_t r;
-    if (rank_of(t->fail_rank, s, &r))
+    if ((w & W_FAILX) && rank_of(t->fail_rank, s, &r))
         return ld_w(t->fail_list + (size_t)r * t->trans_width, t->trans_width);
     return (w & W_FAIL_ROOT) ? ld_w(t->root + (size_t)(w & 0xFFu) * t->trans_width, t->trans_width)
                              : 0u;
 }
 
-/* One byte (class c) from state s.  A valid image needs at most max_len
- * failure steps; a damaged one is cut off there and restarts at the start
- * state, so scanning always ends. */
-static uint32_t step(const ss_table *t, uint32_t s, uint32_t c)
-{
-    const uint32_t tw = t->trans_width;
-    uint32_t guard = t->max_len + 1u, r;
-    while (s != 0 && guard--) {
-        uint32_t w = word(t, s);
-        if ((w & W_CHILD) && (word(t, s + 1u) & 0xFFu) == c)
-            return s + 1u;
-        if (rank_of(t->extra_rank, s, &r)) {
-            uint32_t e = ld_w(t->extra_index + (size_t)r * t->out_width, t->out_width);
-            uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * t->out_width, t->out_width);
-            for (; e < stop; e++) {
-                const uint8_t *x = t->extra_list + (size_t)e * (1u + tw);
-                if (x[0] == c)
-                    return ld_w(x + 1, tw);
-            }
-        }
-        s = fail_of(t, s, w);
+/* One byte (class c) from state s, whose word is w.  A valid image needs at
+ * most max_len failure steps; a damaged one is cut off there and restarts at
+ * the start state, so scanning always ends.  TW is the state id width. */
+#define DEFINE_STEP(NAME, TW)                                                                  \
+    static uint32_t NAME(const ss_table *t, uint32_t s, uint32_t w, uint32_t c)               \
+    {                                                                                          \
+        const uint8_t *words = t->words;                                                       \
+        uint32_t guard = t->max_len, r;                                                        \
+        while (s != 0) {                                                                       \
+            if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)               \
+                return s + 1u;                                                                 \
+            if ((w & W_EXTRA) && filter_has(t, s, c) && rank_of(t->extra_rank, s, &r)) {        \
+                uint32_t e = ld_w(t->extra_index + (size_t)r * t->out_width, t->out_width);    \
+                uint32_t stop =                                                                \
+                    ld_w(t->extra_index + (size_t)(r + 1u) * t->out_width, t->out_width);      \
+                for (; e < stop; e++) {                                                        \
+                    const uint8_t *x = t->extra_list + (size_t)e * (1u + (TW));                \
+                    if (x[0] == c)                                                             \
+                        return ld_w(x + 1, (TW));                                              \
+                }                                                                              \
+            }                                                                                  \
+            if (!(w & (W_FAILX | W_FAIL_ROOT)) || guard-- == 0)                                \
+                break; /* the failure state is the start state */                            \
+            if ((w & W_FAILX) && rank_of(t->fail_rank, s, &r))                                 \
+                s = ld_w(t->fail_list + (size_t)r * (TW), (TW));                               \
+            else                                                                               \
+                s = ld_w(t->root + (size_t)(w & 0xFFu) * (TW), (TW));                          \
+            w = ss_ld16(words + 2u * s);                                                       \
+        }                                                                                      \
+        return ld_w(t->root + (size_t)c * (TW), (TW));                                         \
     }
-    return ld_w(t->root + (size_t)c * tw, tw);
-}
+
+DEFINE_STEP(step1, 1u)
+DEFINE_STEP(step2, 2u)
+DEFINE_STEP(step4, 4u)
 
 /* The matches of state s ending at `end`: its own outputs and those along
  * its failure chain, then put in signature order. */
@@ -100,7 +137,7 @@ static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, 
         uint32_t w = word(t, s);
         if (!(w & W_MATCH))
             break;
-        if (rank_of(t->own_rank, s, &r)) {
+        if ((w & W_OWN) && rank_of(t->own_rank, s, &r)) {
             uint32_t k = ld_w(t->out_index + (size_t)r * ow, ow);
             uint32_t stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
             for (; k < stop; k++)
@@ -117,26 +154,42 @@ static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, 
     return n;
 }
 
+#define DEFINE_SCAN(NAME, STEP)                                                                \
+    static size_t NAME(const ss_table *t, lane *ln, const uint8_t *p, size_t len,             \
+                       ss_match *out, size_t cap, size_t *nout)                                \
+    {                                                                                          \
+        const uint8_t *cls = t->classes, *words = t->words;                                    \
+        uint32_t s = ln->state, w = ss_ld16(words + 2u * s);                                   \
+        size_t i = 0, n = *nout;                                                               \
+        while (i < len) {                                                                      \
+            uint32_t ns = STEP(t, s, w, cls[p[i]]), nw = ss_ld16(words + 2u * ns);             \
+            if (nw & W_MATCH) {                                                                \
+                if (n + t->max_outputs > cap)                                                  \
+                    break;                                                                     \
+                n = emit(t, ns, ln->offset + i + 1u, ln, out, n);                              \
+            }                                                                                  \
+            s = ns;                                                                            \
+            w = nw;                                                                            \
+            i++;                                                                               \
+        }                                                                                      \
+        ln->state = s;                                                                         \
+        ln->offset += i;                                                                       \
+        *nout = n;                                                                             \
+        return i;                                                                              \
+    }
+
+DEFINE_SCAN(scan_w1, step1)
+DEFINE_SCAN(scan_w2, step2)
+DEFINE_SCAN(scan_w4, step4)
+
 size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
                         ss_match *out, size_t cap, size_t *nout)
 {
-    const uint8_t *cls = t->classes;
-    uint32_t s = ln->state;
-    size_t i = 0, n = *nout;
-    while (i < len) {
-        uint32_t ns = step(t, s, cls[p[i]]);
-        if (word(t, ns) & W_MATCH) {
-            if (n + t->max_outputs > cap)
-                break;
-            n = emit(t, ns, ln->offset + i + 1u, ln, out, n);
-        }
-        s = ns;
-        i++;
-    }
-    ln->state = s;
-    ln->offset += i;
-    *nout = n;
-    return i;
+    if (t->trans_width == 1u)
+        return scan_w1(t, ln, p, len, out, cap, nout);
+    if (t->trans_width == 2u)
+        return scan_w2(t, ln, p, len, out, cap, nout);
+    return scan_w4(t, ln, p, len, out, cap, nout);
 }
 
 /* ---- loading ---------------------------------------------------------- */
@@ -178,7 +231,7 @@ static int check_index(const uint8_t *ix, uint32_t size, uint32_t w, uint64_t me
 
 int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
 {
-    uint32_t sz[8], s, c, k, tw = t->trans_width, ow = t->out_width;
+    uint32_t sz[8], fsize, s, c, k, tw = t->trans_width, ow = t->out_width;
     long nfail, nextra, nown;
     uint64_t entries, outs;
     t->words = ss__section(img, nsec, SEC_WORDS, &sz[0]);
@@ -189,6 +242,11 @@ int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
     t->extra_index = ss__section(img, nsec, SEC_EXTRA_INDEX, &sz[5]);
     t->extra_list = ss__section(img, nsec, SEC_EXTRA_LIST, &sz[6]);
     t->own_rank = ss__section(img, nsec, SEC_OWN_RANK, &sz[7]);
+    t->extra_filter = ss__section(img, nsec, SEC_EXTRA_FILTER, &fsize);
+    for (t->filter_log2 = 6; t->filter_log2 < 31u && (1u << t->filter_log2) < 8u * fsize;)
+        t->filter_log2++;
+    if (!t->extra_filter || fsize < 8u || (1u << t->filter_log2) != 8u * fsize)
+        return SS_ERR_SECTION; /* a power of two of at least 64 bits */
     if (!t->words || !t->root || !t->fail_rank || !t->fail_list || !t->extra_rank ||
         !t->extra_index || !t->extra_list || !t->own_rank || t->first_match != t->states ||
         (uint64_t)sz[0] != 2u * (uint64_t)t->states ||
@@ -204,9 +262,12 @@ int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
         if (ld_w(t->root + (size_t)c * tw, tw) >= t->states)
             return SS_ERR_TRANS;
     for (s = 0; s < t->states; s++) {
-        uint32_t w = word(t, s);
-        if ((w & 0xFFu) >= t->nclasses || (w & ~0x7FFu) != 0 ||
-            ((w & W_CHILD) && s + 1u >= t->states))
+        uint32_t w = word(t, s), r;
+        if ((w & 0xFFu) >= t->nclasses || (w & ~W_ALL) != 0 ||
+            ((w & W_CHILD) && s + 1u >= t->states) ||
+            !(w & W_FAILX) != !rank_of(t->fail_rank, s, &r) ||
+            !(w & W_EXTRA) != !rank_of(t->extra_rank, s, &r) ||
+            !(w & W_OWN) != !rank_of(t->own_rank, s, &r))
             return SS_ERR_TRANS;
     }
     for (k = 0; k < (uint32_t)nfail; k++)
@@ -219,6 +280,16 @@ int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
         const uint8_t *x = t->extra_list + (size_t)k * (1u + tw);
         if (x[0] >= t->nclasses || ld_w(x + 1, tw) >= t->states)
             return SS_ERR_TRANS;
+    }
+    for (s = 0; s < t->states; s++) { /* every stored transition passes the filter */
+        uint32_t w = word(t, s), r;
+        if ((w & W_EXTRA) && rank_of(t->extra_rank, s, &r)) {
+            uint32_t e = ld_w(t->extra_index + (size_t)r * ow, ow);
+            uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * ow, ow);
+            for (; e < stop; e++)
+                if (!filter_has(t, s, t->extra_list[(size_t)e * (1u + tw)]))
+                    return SS_ERR_TRANS;
+        }
     }
     {
         uint32_t s_oidx, s_olist;

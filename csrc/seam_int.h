@@ -7,6 +7,7 @@
 #include "seam.h"
 
 #define SS__SIG_RECORD 20u
+#define LANES 8 /* flow sides walked together by ss_scan_batch */
 
 /* Where a scan stands: the state, the offset of the next byte, the offset
  * where the current datagram began (for datagram-scoped matches), and where
@@ -30,5 +31,6 @@ const uint8_t *ss__section(const uint8_t *img, uint32_t nsec, uint32_t kind, uin
 int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec);
 size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
                         ss_match *out, size_t cap, size_t *nout);
+
 
 #endif /* SEAM_INT_H */

@@ -103,7 +103,6 @@ static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, 
 
 /* LANES lanes in lock step over m bytes each: independent lookups, so their
  * memory latencies overlap. */
-#define LANES 8
 #define DEFINE_SCANL(NAME, LOAD, W)                                                            \
     static size_t NAME(const ss_table *t, lane *ln, const uint8_t *const *p, size_t m,        \
                        ss_match *out, size_t cap, size_t *nout)                                \
@@ -269,7 +268,8 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
         }
         if (active == 0)
             break;
-        if (active == LANES && t->layout == SS_LAYOUT_DENSE) {
+        if (active == LANES && t->layout == SS_LAYOUT_DENSE &&
+            cap >= LANES * (size_t)t->max_outputs) {
             size_t m = IDLE, got;
             for (k = 0; k < LANES; k++) {
                 size_t rest = items[held[k]].len - items[held[k]].done;
@@ -291,8 +291,8 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
                 }
             }
         } else {
-            /* Too few items to fill the lanes (or a layout without the
-             * interleaved walk): run the oldest lane alone. */
+            /* Too few items to fill the lanes, or a layout whose walk is
+             * branchy (interleaving it measured slower): the oldest lane alone. */
             size_t oldest = 0;
             ss_item *it;
             for (k = 1; k < LANES; k++)

@@ -92,6 +92,8 @@ static void scan_piece(const ss_table *t, ss_state *st, const ss_ctx *ctx, const
 {
     ss_match *out = out_area(cap);
     size_t done = 0;
+    if (ctx != NULL && (ctx->flags & SS_CTX_DATAGRAM))
+        ss_new_datagram(st); /* each piece is one datagram */
     do {
         size_t n = 0, i;
         size_t got = ss_scan(t, st, ctx, p + done, len - done, out, cap, &n);

@@ -39,14 +39,19 @@ SEC_EXTRA_RANK = 12
 SEC_EXTRA_INDEX = 13
 SEC_EXTRA_LIST = 14
 SEC_OWN_RANK = 15
+SEC_EXTRA_FILTER = 16
+FILTER_HASH = 0x9E3779B1
 SECTION_NAMES = {SEC_WORDS: "state words", SEC_ROOT: "start row", SEC_FAIL_RANK: "failure rank",
                  SEC_FAIL_LIST: "failure links", SEC_EXTRA_RANK: "transition rank",
                  SEC_EXTRA_INDEX: "transition index", SEC_EXTRA_LIST: "transitions",
-                 SEC_OWN_RANK: "output rank"}
+                 SEC_OWN_RANK: "output rank", SEC_EXTRA_FILTER: "transition filter"}
 
 W_CHILD = 0x100  # state s + 1 is entered from s on class (word[s + 1] & 0xff)
 W_FAIL_ROOT_CHILD = 0x200  # failure state = start row[class of the edge into s]
 W_MATCH = 0x400  # s has outputs (its own or its failure chain's)
+W_EXTRA = 0x800  # s is in the transition rank set (further labelled transitions)
+W_FAIL_STORED = 0x1000  # s is in the failure rank set (a stored failure link)
+W_OWN = 0x2000  # s is in the output rank set (outputs of its own)
 RANK_BLOCK = 64
 RANK_ENTRY = struct.Struct("<IQ")  # count of set bits before the block, the block's bits
 
@@ -65,6 +70,23 @@ def _rank_set(bits: np.ndarray) -> bytes:
     out["base"] = base
     out["bits"] = words
     return out.tobytes()
+
+
+def filter_bit(s: int, c: int, bits_log2: int) -> int:
+    """Which bit of the transition filter stands for (state, class)."""
+    return ((((s << 8) | c) * FILTER_HASH) & 0xFFFFFFFF) >> (32 - bits_log2)
+
+
+def _filter(entries: list[tuple[int, int]]) -> bytes:
+    """A one-hash bit filter over (state, class) with about 8 bits per entry."""
+    log2 = 6
+    while (1 << log2) < 8 * len(entries):
+        log2 += 1
+    bits = bytearray((1 << log2) // 8)
+    for s, c in entries:
+        h = filter_bit(s, c, log2)
+        bits[h >> 3] |= 1 << (h & 7)
+    return bytes(bits)
 
 
 def _preorder(trans: np.ndarray, fail: np.ndarray):
@@ -117,6 +139,7 @@ def encode_compact(automaton, signatures) -> bytes:
     fail_list: list[int] = []
     extra_index = [0]
     extra_list = bytearray()
+    extra_keys: list[tuple[int, int]] = []
     own_index = [0]
     own_list: list[int] = []
     width = image._width(n - 1)
@@ -135,8 +158,10 @@ def encode_compact(automaton, signatures) -> bytes:
         rest = [(c, t) for c, t in edges if not (t == s + 1 and c == child_class)]
         if s and rest:
             extra_bits[s] = True
+            words[s] |= W_EXTRA
             for c, t in rest:
                 extra_list += struct.pack("<B", c) + struct.pack(pack_target, t)
+                extra_keys.append((s, c))
             extra_index.append(extra_index[-1] + len(rest))
     for old in order:
         s = int(new[old])
@@ -150,12 +175,14 @@ def encode_compact(automaton, signatures) -> bytes:
             words[s] |= W_FAIL_ROOT_CHILD
         else:
             fail_bits[s] = True
+            words[s] |= W_FAIL_STORED
             fail_list.append(f)
         mine = sorted(set(outs[old]) - set(outs[a.fail[old]]))
         if outs[old]:
             words[s] |= W_MATCH
         if mine:
             own_bits[s] = True
+            words[s] |= W_OWN
             own_list.extend(mine)
             own_index.append(len(own_list))
     # One width for the output list and both index sections.
@@ -171,6 +198,7 @@ def encode_compact(automaton, signatures) -> bytes:
         (SEC_EXTRA_INDEX, np.asarray(extra_index, dtype=image._DTYPES[out_width]).tobytes()),
         (SEC_EXTRA_LIST, bytes(extra_list)),
         (SEC_OWN_RANK, _rank_set(own_bits)),
+        (SEC_EXTRA_FILTER, _filter(extra_keys)),
         (image.SEC_OUT_INDEX, np.asarray(own_index, dtype=image._DTYPES[out_width]).tobytes()),
         (image.SEC_OUT_LIST, np.asarray(own_list, dtype=image._DTYPES[out_width]).tobytes()),
         (image.SEC_SIGS, sig_records),
