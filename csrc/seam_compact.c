@@ -14,6 +14,8 @@
 #include "seam_int.h"
 #include "seam_le.h"
 
+#ifndef SS_NO_COMPACT
+
 enum {
     SEC_OUT_INDEX = 3, SEC_OUT_LIST = 4, SEC_WORDS = 8, SEC_ROOT, SEC_FAIL_RANK, SEC_FAIL_LIST,
     SEC_EXTRA_RANK, SEC_EXTRA_INDEX, SEC_EXTRA_LIST, SEC_OWN_RANK, SEC_EXTRA_FILTER
@@ -28,16 +30,7 @@ enum {
 #define W_ALL 0x3FFFu
 #define RANK_ENTRY 12u     /* u32 count before the block, u64 map */
 
-#if defined(__GNUC__)
-#define SS_INLINE static inline __attribute__((always_inline))
-#else
-#define SS_INLINE static inline
-#endif
-
-SS_INLINE uint32_t ld_w(const uint8_t *p, uint32_t w)
-{
-    return w == 1u ? p[0] : w == 2u ? ss_ld16(p) : ss_ld32(p);
-}
+#define ld_w ss__ld_w
 
 SS_INLINE unsigned pop64(uint64_t x)
 {
@@ -121,9 +114,13 @@ static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w)
         return ld_w(t->root + (size_t)c * (TW), (TW));                                         \
     }
 
+#ifdef SS_SMALL
+DEFINE_STEP(step_any, t->trans_width)
+#else
 DEFINE_STEP(step1, 1u)
 DEFINE_STEP(step2, 2u)
 DEFINE_STEP(step4, 4u)
+#endif
 
 /* The matches of state s ending at `end`: its own outputs and those along
  * its failure chain, then put in signature order. */
@@ -178,6 +175,15 @@ static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, 
         return i;                                                                              \
     }
 
+#ifdef SS_SMALL
+DEFINE_SCAN(scan_any, step_any)
+
+size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
+                        ss_match *out, size_t cap, size_t *nout)
+{
+    return scan_any(t, ln, p, len, out, cap, nout);
+}
+#else
 DEFINE_SCAN(scan_w1, step1)
 DEFINE_SCAN(scan_w2, step2)
 DEFINE_SCAN(scan_w4, step4)
@@ -191,6 +197,7 @@ size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t le
         return scan_w2(t, ln, p, len, out, cap, nout);
     return scan_w4(t, ln, p, len, out, cap, nout);
 }
+#endif
 
 /* ---- loading ---------------------------------------------------------- */
 
@@ -313,3 +320,7 @@ int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
     }
     return SS_OK;
 }
+
+#else
+typedef int ss_no_compact_layout; /* ISO C wants a declaration in every file */
+#endif /* SS_NO_COMPACT */

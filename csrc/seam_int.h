@@ -5,6 +5,21 @@
 #define SEAM_INT_H
 
 #include "seam.h"
+#include "seam_le.h"
+
+/* SS_SMALL: one width-generic scan loop per layout instead of one per state
+ * id width (smaller code for devices, a little slower). */
+#if defined(__GNUC__) && !defined(SS_SMALL)
+#define SS_INLINE static inline __attribute__((always_inline))
+#else
+#define SS_INLINE static inline
+#endif
+
+/* A little-endian unsigned of w = 1, 2 or 4 bytes. */
+SS_INLINE uint32_t ss__ld_w(const uint8_t *p, uint32_t w)
+{
+    return w == 1u ? p[0] : w == 2u ? ss_ld16(p) : ss_ld32(p);
+}
 
 #define SS__SIG_RECORD 20u
 #define LANES 8 /* flow sides walked together by ss_scan_batch */

@@ -97,6 +97,7 @@ static int check_sections(const uint8_t *img, uint32_t size, uint32_t nsec)
     return SS_OK;
 }
 
+#ifndef SS_NO_DENSE
 static int check_dense(const ss_table *t, uint32_t trans_size)
 {
     uint64_t entries = (uint64_t)t->states * t->stride, k;
@@ -146,6 +147,8 @@ static int check_outputs(ss_table *t, uint32_t index_size, uint32_t list_size, u
     return SS_OK;
 }
 
+#endif /* SS_NO_DENSE */
+
 static int check_sigs(const ss_table *t, uint32_t sigs_size, uint32_t ports_size)
 {
     uint32_t i, longest = 0;
@@ -187,6 +190,14 @@ int ss_load(ss_table *t, const void *image, size_t size)
     if (ss_crc32(img + 16, isize - 16u) != ss_ld32(img + 12))
         return SS_ERR_CRC;
     t->layout = ss_ld16(img + 6);
+#ifdef SS_NO_DENSE
+    if (t->layout == SS_LAYOUT_DENSE)
+        return SS_ERR_LAYOUT;
+#endif
+#ifdef SS_NO_COMPACT
+    if (t->layout == SS_LAYOUT_COMPACT)
+        return SS_ERR_LAYOUT;
+#endif
     if (t->layout != SS_LAYOUT_DENSE && t->layout != SS_LAYOUT_COMPACT)
         return SS_ERR_LAYOUT;
 
@@ -227,15 +238,23 @@ int ss_load(ss_table *t, const void *image, size_t size)
         if (t->classes[b] >= t->nclasses)
             return SS_ERR_CLASSES;
     rc = check_sigs(t, s_sigs, s_ports);
+#ifndef SS_NO_DENSE
     if (rc == SS_OK && t->layout == SS_LAYOUT_DENSE) {
         t->trans = ss__section(img, nsec, SEC_DENSE, &s_trans);
         rc = t->trans ? check_dense(t, s_trans) : SS_ERR_SECTION;
         if (rc == SS_OK)
             rc = check_outputs(t, s_oidx, s_olist, want_max);
-    } else if (rc == SS_OK) {
+    }
+#endif
+#ifndef SS_NO_COMPACT
+    if (rc == SS_OK && t->layout == SS_LAYOUT_COMPACT) {
         t->max_outputs = want_max; /* compact: bounded again when emitting */
         rc = ss__check_compact(t, img, nsec);
     }
+#endif
+    (void)s_trans;
+    (void)s_oidx;
+    (void)s_olist;
     if (rc != SS_OK)
         memset(t, 0, sizeof *t);
     return rc;

@@ -57,6 +57,7 @@ size_t ss__emit_sig(const ss_table *t, uint32_t sig, uint64_t end, const lane *l
     return n + 1;
 }
 
+#ifndef SS_NO_DENSE
 /* Append the matches of dense match state `s` ending at stream offset `end`. */
 static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, ss_match *out,
                    size_t n)
@@ -140,33 +141,54 @@ static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, 
         return j;                                                                              \
     }
 
+#ifdef SS_SMALL
+#define LOADANY(p) ss__ld_w((p), t->trans_width)
+DEFINE_SCAN1(scan1_any, LOADANY, t->trans_width)
+#else
 DEFINE_SCAN1(scan1_w1, LOAD1, 1u)
 DEFINE_SCAN1(scan1_w2, LOAD2, 2u)
 DEFINE_SCAN1(scan1_w4, LOAD4, 4u)
+#endif
 DEFINE_SCANL(scanl_w1, LOAD1, 1u)
 DEFINE_SCANL(scanl_w2, LOAD2, 2u)
 DEFINE_SCANL(scanl_w4, LOAD4, 4u)
 
+#endif /* SS_NO_DENSE */
+
 static size_t scan1(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
                     size_t cap, size_t *nout)
 {
+#ifndef SS_NO_COMPACT
     if (t->layout == SS_LAYOUT_COMPACT)
         return ss__scan_compact(t, ln, p, len, out, cap, nout);
+#endif
+#ifdef SS_NO_DENSE
+    (void)t, (void)ln, (void)p, (void)len, (void)out, (void)cap, (void)nout;
+    return 0;
+#elif defined(SS_SMALL)
+    return scan1_any(t, ln, p, len, out, cap, nout);
+#else
     if (t->trans_width == 1u)
         return scan1_w1(t, ln, p, len, out, cap, nout);
     if (t->trans_width == 2u)
         return scan1_w2(t, ln, p, len, out, cap, nout);
     return scan1_w4(t, ln, p, len, out, cap, nout);
+#endif
 }
 
 static size_t scanl(const ss_table *t, lane *ln, const uint8_t *const *p, size_t m,
                     ss_match *out, size_t cap, size_t *nout)
 {
+#ifdef SS_NO_DENSE
+    (void)t, (void)ln, (void)p, (void)m, (void)out, (void)cap, (void)nout;
+    return 0;
+#else
     if (t->trans_width == 1u)
         return scanl_w1(t, ln, p, m, out, cap, nout);
     if (t->trans_width == 2u)
         return scanl_w2(t, ln, p, m, out, cap, nout);
     return scanl_w4(t, ln, p, m, out, cap, nout);
+#endif
 }
 
 size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *data,

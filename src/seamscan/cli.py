@@ -90,11 +90,20 @@ def build_parser() -> argparse.ArgumentParser:
                         "exact bytes the host scans with and a device loads.")
     co.add_argument("rules", metavar="SET.toml")
     co.add_argument("-o", "--output", metavar="TABLE.seam", required=True)
-    co.add_argument("--layout", default="dense", choices=("dense",),
-                    help="table layout (default dense: one lookup per byte)")
+    co.add_argument("--layout", default="auto", choices=("dense", "compact", "auto"),
+                    help="dense: one lookup per byte, largest; compact: own transitions and "
+                    "failure links, a few bytes per state, at most 2 steps per byte amortised; "
+                    "auto (default): the fastest that fits --budget")
     co.add_argument("--budget", type=_size_arg, metavar="SIZE",
-                    help="the most bytes the image may take, e.g. 32KiB")
+                    help="the most bytes the image may take, e.g. 32KiB or 2MiB")
+    co.add_argument("--c-header", metavar="FILE.h",
+                    help="also write the image as a C header for firmware (aligned const "
+                    "array, size and CRC macros, signature ids and labels)")
+    co.add_argument("--symbol", metavar="NAME",
+                    help="C identifier for the header's array (default: from the output name)")
     co.add_argument("--max-states", type=int, metavar="N", help="automaton state cap")
+    co.add_argument("--no-speed", action="store_true",
+                    help="skip the host speed measurement in the report")
 
     ins = sub.add_parser("inspect", help="validate a table image and print its header",
                          description="Validate a table image (CRC, every bound) and print its "
@@ -258,40 +267,108 @@ def _replay_worker(path, blob, options):
 def cmd_compile(args) -> int:
     import time
 
+    from seamscan import engine
+    from seamscan.compiler import CompileError
+    from seamscan.signatures import SignatureError, load_signatures
+
+    symbol = args.symbol or _symbol_from(args.c_header or args.output)
+    if args.c_header:
+        from seamscan.export import valid_symbol
+
+        if not valid_symbol(symbol):
+            return _fail(f"--symbol {symbol!r} is not a C identifier (letters, digits, _; not a "
+                         "keyword; not starting with a digit)", EXIT_USAGE)
     t0 = time.perf_counter()
-    table, code = _load_table(args)
-    if table is None:
-        return code
+    try:
+        sigset = load_signatures(args.rules)
+        kw = {"max_states": args.max_states} if args.max_states else {}
+        automaton, tables = engine.compile_layouts(sigset, **kw)
+    except SignatureError as err:
+        return _fail(str(err), EXIT_USAGE)
+    except CompileError as err:
+        return _fail(f"{args.rules}: {err}", EXIT_USAGE)
     elapsed = time.perf_counter() - t0
-    if args.budget is not None and table.nbytes > args.budget:
-        print(size_report(table, elapsed, args.budget))
-        return _fail(f"the {table.layout} table ({table.nbytes:,} bytes) does not fit the budget "
-                     f"of {args.budget:,} bytes", EXIT_USAGE)
+    sample = None if args.no_speed else engine.sample_traffic()
+    print(f"{args.rules}: {len(sigset)} signatures, {automaton.states:,} states, "
+          f"{automaton.nclasses} byte classes, compiled in {elapsed:.2f} s")
+    print(layout_report(tables, args.budget, sample))
+    fits = [n for n in engine.AUTO_ORDER
+            if args.budget is None or tables[n].nbytes <= args.budget]
+    chosen = args.layout if args.layout != "auto" else (fits[0] if fits else None)
+    if chosen is None or chosen not in fits:
+        what = "no layout fits" if chosen is None else f"the {chosen} layout does not fit"
+        lines = [f"{what} the budget of {args.budget:,} bytes. The signatures costing the most "
+                 "states, and what dropping each would save (about):"]
+        sizes = {n: t.nbytes for n, t in tables.items()}
+        for sid, states, saved in engine.costliest_signatures(automaton, list(sigset), sizes)[:10]:
+            lines.append(f"    {sid:<24} {states:>8,} states  {saved:>12,} bytes")
+        return _fail("\n".join(lines), EXIT_USAGE)
+    table = tables[chosen]
     try:
         with open(args.output, "wb") as f:
             f.write(table.to_bytes())
+        if args.c_header:
+            from seamscan.export import c_header
+
+            with open(args.c_header, "w", encoding="utf-8") as f:
+                f.write(c_header(table, symbol, source=os.path.basename(args.rules)))
     except OSError as err:
-        return _fail(f"{args.output}: cannot write: {err.strerror}", EXIT_USAGE)
-    print(size_report(table, elapsed, args.budget))
-    print(f"wrote {args.output}")
+        return _fail(f"{err.filename}: cannot write: {err.strerror}", EXIT_USAGE)
+    print(f"wrote {args.output} ({chosen}, {table.nbytes:,} bytes, CRC-32 {table.header.crc:08x})"
+          + (f" and {args.c_header} (symbol {symbol})" if args.c_header else ""))
     return EXIT_OK
 
 
-def size_report(table, elapsed=None, budget=None) -> str:
-    from seamscan.image import SECTION_NAMES
+def _symbol_from(path: str) -> str:
+    import re
+
+    stem = os.path.splitext(os.path.basename(path))[0]
+    name = re.sub(r"\W", "_", stem).strip("_") or "seam_table"
+    return ("t_" + name) if name[0].isdigit() else name
+
+
+STEPS = {"dense": "1", "compact": "2 amortised"}
+
+
+def layout_report(tables: dict, budget=None, sample=None) -> str:
+    """Per layout: bytes, automaton bytes per state, steps per byte, host speed, fit."""
+    from seamscan import engine
+
+    head = f"  {'layout':<8} {'bytes':>12} {'per state':>9} {'state ids':>9} {'steps/byte':>12}"
+    head += f" {'host MB/s':>9}" if sample is not None else ""
+    head += "  budget" if budget is not None else ""
+    lines = [head]
+    for name, table in tables.items():
+        row = (f"  {name:<8} {table.nbytes:>12,} {automaton_bytes(table) / table.states:>9.2f} "
+               f"{table.header.trans_width * 8:>6}-bit {STEPS.get(name, '?'):>12}")
+        if sample is not None:
+            row += f" {engine.measure_speed(table, sample):>9.0f}"
+        if budget is not None:
+            row += "  fits" if table.nbytes <= budget else "  does not fit"
+        lines.append(row)
+    lines.append("  (per state: the image less signature records, ports and names, over the "
+                 "states; steps: state visits per byte)")
+    for name, table in tables.items():
+        lines.append(f"  {name} sections:")
+        lines.extend(_sections(table))
+    return "\n".join(lines)
+
+
+def automaton_bytes(table) -> int:
+    from seamscan import image
 
     h = table.header
-    lines = [f"layout {table.layout}: {table.nbytes:,} bytes, {table.states:,} states, "
-             f"{table.classes} byte classes, {len(table)} signatures, "
-             f"{h.trans_width * 8}-bit state ids, 1 lookup per byte"]
-    for kind, (_off, size) in sorted(h.sections.items()):
-        lines.append(f"    {SECTION_NAMES.get(kind, f'section {kind}'):<18} {size:>12,} bytes")
-    if elapsed is not None:
-        lines.append(f"    compiled in {elapsed:.2f} s")
-    if budget is not None:
-        verdict = "fits" if table.nbytes <= budget else "does NOT fit"
-        lines.append(f"    budget {budget:,} bytes: {verdict}")
-    return "\n".join(lines)
+    return table.nbytes - sum(h.sections.get(k, (0, 0))[1]
+                              for k in (image.SEC_SIGS, image.SEC_PORTS, image.SEC_NAMES))
+
+
+def _sections(table) -> list[str]:
+    from seamscan.compact import SECTION_NAMES as COMPACT_NAMES
+    from seamscan.image import SECTION_NAMES
+
+    names = {**SECTION_NAMES, **COMPACT_NAMES}
+    return [f"    {names.get(kind, f'section {kind}'):<20} {size:>12,} bytes"
+            for kind, (_off, size) in sorted(table.header.sections.items())]
 
 
 def cmd_inspect(args) -> int:
@@ -300,7 +377,13 @@ def cmd_inspect(args) -> int:
     if table is None:
         return code
     h = table.header
-    print(f"{args.table}: valid table image, format version {h.version}, CRC-32 {h.crc:08x}")
-    print(size_report(table))
-    print(f"    longest signature {h.max_len} bytes, at most {h.max_outputs} outputs per state")
+    print(f"{args.table}: valid table image (CRC-32 {h.crc:08x} checked, every index in "
+          f"bounds), format version {h.version}")
+    print(f"  layout {table.layout}, {table.nbytes:,} bytes, {table.states:,} states, "
+          f"{table.classes} byte classes, {h.trans_width * 8}-bit state ids")
+    print(f"  {len(table)} signatures, longest {h.max_len} bytes, at most {h.max_outputs} "
+          f"outputs per state; {automaton_bytes(table) / table.states:.2f} automaton bytes "
+          "per state")
+    print("  sections:")
+    print("\n".join(_sections(table)))
     return EXIT_OK

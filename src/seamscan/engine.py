@@ -82,6 +82,47 @@ def compile(sigset, layout: str = "dense", budget=None, *,
     raise BudgetError(limit, sizes, automaton, sigs)
 
 
+def compile_layouts(sigset, *, max_states: int = compiler.DEFAULT_MAX_STATES):
+    """One automaton, every layout: (automaton, {layout: Table})."""
+    sigs = list(sigset)
+    automaton = compiler.build([s.byte_sets() for s in sigs], max_states=max_states,
+                               names=[s.id for s in sigs])
+    tables = {}
+    for name, encode in ENCODERS.items():
+        table = Table.from_bytes(encode(automaton, sigs))
+        table.signatures = sigset
+        table.automaton = automaton
+        tables[name] = table
+    return automaton, tables
+
+
+def sample_traffic(nbytes: int = 4_000_000, seed: int = 7) -> bytes:
+    """Packet-like bytes for a quick speed figure: text requests and binary records."""
+    import random
+
+    rnd = random.Random(seed)
+    out = bytearray()
+    while len(out) < nbytes:
+        if rnd.random() < 0.5:
+            out += (b"GET /zone/%d/state HTTP/1.1\r\nhost: ctl-%d.lab\r\naccept: */*\r\n\r\n"
+                    % (rnd.randrange(100), rnd.randrange(50)))
+        else:
+            out += rnd.randbytes(rnd.randrange(60, 1400))
+    return bytes(out[:nbytes])
+
+
+def measure_speed(table: Table, data: bytes, rounds: int = 3) -> float:
+    """MB/s of one stream through ``table`` (best of ``rounds``)."""
+    import time
+
+    best = float("inf")
+    for _ in range(rounds):
+        t0 = time.perf_counter()
+        table.scan(data)
+        best = min(best, time.perf_counter() - t0)
+    return len(data) / best / 1e6
+
+
 class BudgetError(compiler.CompileError):
     """No layout fits the budget; carries the sizes and the costliest signatures."""
 
