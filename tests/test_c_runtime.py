@@ -165,18 +165,27 @@ def test_runtime_calls_nothing_beyond_string_h(build_dir):
     assert undefined <= ALLOWED_EXTERNALS, f"runtime calls {sorted(undefined - ALLOWED_EXTERNALS)}"
 
 
-def test_cortex_m4_runtime_has_no_data_or_bss(build_dir):
+def _m4_sizes(build_dir) -> dict[str, tuple[int, int, int]]:
     if shutil.which("arm-none-eabi-gcc") is None or shutil.which("arm-none-eabi-size") is None:
         pytest.skip("no arm-none-eabi toolchain")
     r = _make(build_dir, "sizes-m4")
     assert r.returncode == 0, r.stdout + r.stderr
-    m = re.search(r"device subset: code (\d+) B, read-only data (\d+) B, \.data\+\.bss (\d+) B", r.stdout)
-    assert m, r.stdout
-    assert int(m.group(3)) == 0, r.stdout
-    for line in r.stdout.splitlines():  # Berkeley format: text data bss dec hex filename
-        fields = line.split()
-        if len(fields) == 6 and fields[0].isdigit():
-            assert fields[1] == "0" and fields[2] == "0", line
+    found = re.findall(r"(\w+)\s+code (\d+) B, read-only data (\d+) B, \.data\+\.bss (\d+) B",
+                       r.stdout)
+    assert {name for name, *_ in found} == {"dense", "compact", "both"}, r.stdout
+    return {name: (int(c), int(ro), int(d)) for name, c, ro, d in found}
+
+
+def test_cortex_m4_runtime_has_no_data_or_bss(build_dir):
+    for name, (_code, _rodata, data) in _m4_sizes(build_dir).items():
+        assert data == 0, name
+
+
+def test_cortex_m4_dense_runtime_fits_2_kib_of_code(build_dir):
+    # The device target: a device links the one layout it ships, built with
+    # SS_SMALL; the dense runtime's code is at most 2 KiB.
+    code, _rodata, _data = _m4_sizes(build_dir)["dense"]
+    assert code <= 2048
 
 
 # --- CRC-32 -------------------------------------------------------------------
