@@ -24,9 +24,12 @@ Storage (``csrc/FORMAT.md`` has the byte layout):
 
 from __future__ import annotations
 
-import struct
+from typing import TYPE_CHECKING
 
-import numpy as np
+if TYPE_CHECKING:  # numpy is imported where it is used: table loading does not need it
+    import numpy as np
+
+import struct
 
 from seamscan import image
 
@@ -58,6 +61,8 @@ RANK_ENTRY = struct.Struct("<IQ")  # count of set bits before the block, the blo
 
 def _rank_set(bits: np.ndarray) -> bytes:
     """A rank set over a boolean array: per 64 entries (u32 base, u64 bitmap)."""
+    import numpy as np
+
     n = len(bits)
     blocks = (n + RANK_BLOCK - 1) // RANK_BLOCK
     padded = np.zeros(blocks * RANK_BLOCK, dtype=bool)
@@ -93,6 +98,8 @@ def _preorder(trans: np.ndarray, fail: np.ndarray):
     """Depth-first preorder over labelled transitions: (order, each state's
     labelled transitions (class, target) in class order, the class of the
     edge each state was first reached by)."""
+    import numpy as np
+
     n = trans.shape[0]
     labelled: list[list[tuple[int, int]]] = [[] for _ in range(n)]
     diff = trans[1:] != trans[fail[1:]]
@@ -121,6 +128,8 @@ def _preorder(trans: np.ndarray, fail: np.ndarray):
 
 
 def encode_compact(automaton, signatures) -> bytes:
+    import numpy as np
+
     a = automaton
     n = a.states
     order, labelled, entered = _preorder(a.trans, a.fail)
@@ -217,6 +226,8 @@ class CompactModel:
     reference (tests compare it with the C runtime and count its steps)."""
 
     def __init__(self, blob: bytes):
+        import numpy as np
+
         h = image.read_header(blob)
         self.h = h
         sec = {k: blob[o:o + n] for k, (o, n) in h.sections.items()}

@@ -29,10 +29,13 @@ when every byte set of every signature holds both or neither of them.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # numpy is imported where it is used: table loading does not need it
+    import numpy as np
+
 from collections.abc import Sequence
 from dataclasses import dataclass
-
-import numpy as np
 
 DEFAULT_MAX_STATES = 2_000_000
 
@@ -93,6 +96,8 @@ def build(patterns: Sequence[Sequence[frozenset[int]]], *, max_states: int = DEF
           names: Sequence[str] | None = None) -> Automaton:
     """Compile patterns (each a non-empty sequence of byte sets) into an
     :class:`Automaton`; output lists hold indices into ``patterns``."""
+    import numpy as np
+
     if not patterns:
         raise CompileError("no signatures to compile")
     classes, ncls = byte_classes(patterns)

@@ -11,8 +11,6 @@ import struct
 import zlib
 from dataclasses import dataclass
 
-import numpy as np
-
 MAGIC = b"SEAM"
 FORMAT_VERSION = 1
 HEADER_SIZE = 64
@@ -88,6 +86,8 @@ _DTYPES = {1: "<u1", 2: "<u2", 4: "<u4"}
 
 def encode_dense(automaton, signatures) -> bytes:
     """Lay out a compiled automaton and its signature records as a dense image."""
+    import numpy as np
+
     a = automaton
     nstates = a.states
     width = _width(nstates - 1)
@@ -119,6 +119,8 @@ def encode_dense(automaton, signatures) -> bytes:
 
 
 def _signature_records(signatures) -> tuple[bytes, bytes]:
+    import numpy as np
+
     records = bytearray()
     ports: list[int] = []
     for sig in signatures:
