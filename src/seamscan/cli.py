@@ -273,11 +273,11 @@ def cmd_compile(args) -> int:
 
     symbol = args.symbol or _symbol_from(args.c_header or args.output)
     if args.c_header:
-        from seamscan.export import valid_symbol
+        from seamscan.export import symbol_problem
 
-        if not valid_symbol(symbol):
-            return _fail(f"--symbol {symbol!r} is not a C identifier (letters, digits, _; not a "
-                         "keyword; not starting with a digit)", EXIT_USAGE)
+        problem = symbol_problem(symbol)
+        if problem:
+            return _fail(f"--symbol {symbol!r}: {problem}", EXIT_USAGE)
     t0 = time.perf_counter()
     try:
         sigset = load_signatures(args.rules)
