@@ -91,9 +91,14 @@ static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w)
         const uint8_t *words = t->words;                                                       \
         uint32_t guard = t->max_len, r;                                                        \
         while (s != 0) {                                                                       \
-            if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)               \
-                return s + 1u;                                                                 \
-            if ((w & W_EXTRA) && filter_has(t, s, c) && rank_of(t->extra_rank, s, &r)) {        \
+            if (!(w & W_EXTRA)) {                                                              \
+                if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)           \
+                    return s + 1u;                                                             \
+            } else if (filter_has(t, s, c)) { /* else no transition of s is on c */             \
+                if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)           \
+                    return s + 1u;                                                             \
+                if (!rank_of(t->extra_rank, s, &r))                                            \
+                    r = 0; /* not reached: the loader checked the rank sets */                 \
                 uint32_t e = ld_w(t->extra_index + (size_t)r * t->out_width, t->out_width);    \
                 uint32_t stop =                                                                \
                     ld_w(t->extra_index + (size_t)(r + 1u) * t->out_width, t->out_width);      \
@@ -288,8 +293,10 @@ int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
         if (x[0] >= t->nclasses || ld_w(x + 1, tw) >= t->states)
             return SS_ERR_TRANS;
     }
-    for (s = 0; s < t->states; s++) { /* every stored transition passes the filter */
+    for (s = 0; s < t->states; s++) { /* every transition of a member passes the filter */
         uint32_t w = word(t, s), r;
+        if ((w & W_EXTRA) && (w & W_CHILD) && !filter_has(t, s, word(t, s + 1u) & 0xFFu))
+            return SS_ERR_TRANS;
         if ((w & W_EXTRA) && rank_of(t->extra_rank, s, &r)) {
             uint32_t e = ld_w(t->extra_index + (size_t)r * ow, ow);
             uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * ow, ow);

@@ -83,9 +83,9 @@ def filter_bit(s: int, c: int, bits_log2: int) -> int:
 
 
 def _filter(entries: list[tuple[int, int]]) -> bytes:
-    """A one-hash bit filter over (state, class) with about 8 bits per entry."""
+    """A one-hash bit filter over (state, class), at least 6 bits per entry."""
     log2 = 6
-    while (1 << log2) < 8 * len(entries):
+    while (1 << log2) < 6 * len(entries):
         log2 += 1
     bits = bytearray((1 << log2) // 8)
     for s, c in entries:
@@ -168,6 +168,8 @@ def encode_compact(automaton, signatures) -> bytes:
         if s and rest:
             extra_bits[s] = True
             words[s] |= W_EXTRA
+            if child_class is not None:  # the filter covers every transition of s
+                extra_keys.append((s, child_class))
             for c, t in rest:
                 extra_list += struct.pack("<B", c) + struct.pack(pack_target, t)
                 extra_keys.append((s, c))
