@@ -18,6 +18,7 @@ Exact multi-signature matching in packet payloads, across packet boundaries.
   seamscan scan CAPTURE... --rules SET.toml     replay captures, print per-flow matches
   seamscan compile SET.toml -o TABLE.seam      build the table image a device scans with
   seamscan inspect TABLE.seam                  validate an image and show what it holds
+  seamscan rate CAPTURE... --rules SET.toml     judge a set's hit rate on a lab capture
 
 Exit codes: 0 success, 2 usage or signature-set error, 3 damaged input
 (partial results written)."""
@@ -105,6 +106,10 @@ def build_parser() -> argparse.ArgumentParser:
     co.add_argument("--no-speed", action="store_true",
                     help="skip the host speed measurement in the report")
 
+    from seamscan.evaluate import add_rate_parser
+
+    add_rate_parser(sub)
+
     ins = sub.add_parser("inspect", help="validate a table image and print its header",
                          description="Validate a table image (CRC, every bound) and print its "
                          "header and statistics. A damaged image exits 3.")
@@ -124,6 +129,10 @@ def main(argv=None) -> int:
         ap.print_help()
         return EXIT_USAGE
     try:
+        if args.command == "rate":
+            from seamscan.evaluate import cmd_rate
+
+            return cmd_rate(args)
         return {"scan": cmd_scan, "compile": cmd_compile, "inspect": cmd_inspect}[args.command](args)
     except KeyboardInterrupt:
         print("seamscan: interrupted", file=sys.stderr)
