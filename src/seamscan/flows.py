@@ -4,9 +4,11 @@
 delivers every flow side's intended byte stream to a `Sink` exactly once, in
 stream order, with stream offsets, and says where the holes are.
 
-A packet is any object with the attributes proto (6 TCP, 17 UDP), src, dst
-(4 or 16 bytes), sport, dport, seq, ack, flags (TCP flags byte), payload,
-frame (1-based record number) and ts (capture seconds); ack is not used.
+A packet is a tuple of the fields proto (6 TCP, 17 UDP), src, dst (4 or 16
+bytes), sport, dport, seq, ack, flags (TCP flags byte), payload, frame
+(1-based record number) and ts (capture seconds), in this order and also
+readable by name: `seamscan.decode.Packet`, or any namedtuple of these
+fields (the hot path unpacks it, the rest reads names); ack is not used.
 
 Contract, in short (the sink's side of it is in `Sink`):
 
@@ -142,6 +144,7 @@ class Flow:
     packets / bytes: per side [client, server]; bytes = payload bytes delivered.
     gaps / overlaps: gap and overlap events of this flow.
     end_reason: None while live, then "fin" | "rst" | "idle" | "evicted" | "capture_end".
+    The reassembly state goes once the flow has ended; the fields above stay.
     """
 
     __slots__ = (
@@ -279,6 +282,8 @@ class FlowTracker:
         self._sides = {}  # (src, sport, dst, dport, proto) -> _Side of that sender
         self._tcp_lru = OrderedDict()  # live TCP flows, least recently active first
         self._udp_lru = OrderedDict()
+        self._tcp_touch = self._tcp_lru.move_to_end
+        self._udp_touch = self._udp_lru.move_to_end
         # key of a flow ended by fin/rst -> (capture time it expires, client
         # endpoint, sequence number where each side's stream stopped or None)
         self._closed = OrderedDict()
@@ -292,10 +297,10 @@ class FlowTracker:
 
     def packet(self, pkt) -> None:
         """Account one decoded packet; emits the sink events it makes due."""
-        ts = pkt.ts
+        proto, src, dst, sport, dport, seq, _ack, flags, payload, frame, ts = pkt
         if ts >= self._sweep_at:
             self._sweep(ts)
-        s = self._sides.get((pkt.src, pkt.sport, pkt.dst, pkt.dport, pkt.proto))
+        s = self._sides.get((src, sport, dst, dport, proto))
         if s is None:
             s = self._new_flow(pkt)
             if s is None:
@@ -304,33 +309,31 @@ class FlowTracker:
         flow.last_ts = ts
         side = s.side
         flow.packets[side] += 1
-        if flow.proto == TCP:
-            self._tcp_lru.move_to_end(flow)
-            if not pkt.flags & 7:  # no FIN, SYN or RST
-                payload = pkt.payload
+        if proto == TCP:
+            self._tcp_touch(flow)
+            if not flags & 7:  # no FIN, SYN or RST
                 if payload:
-                    if pkt.seq == s.expect:  # in order, nothing held: deliver as is
+                    if seq == s.expect:  # in order, nothing held: deliver as is
                         n = len(payload)
                         off = s.next
-                        self._data(flow, side, off, payload, pkt.frame, ts, False)
+                        self._data(flow, side, off, payload, frame, ts, False)
                         s.next = off + n
-                        s.expect = (s.expect + n) & _MASK
+                        s.expect = (seq + n) & _MASK
                         flow.bytes[side] += n
                         s.recent.append(payload)
-                        s.recent_len += n
-                        if s.recent_len > self._tail_cap:
+                        s.recent_len = tail = s.recent_len + n
+                        if tail > self._tail_cap:
                             self._trim_tail(s)
                         return
                 elif s.started:
                     return
             self._tcp_segment(s, pkt)
         else:
-            self._udp_lru.move_to_end(flow)
-            payload = pkt.payload
+            self._udp_touch(flow)
             if payload:
                 n = len(payload)
                 off = s.next
-                self._data(flow, side, off, payload, pkt.frame, ts, True)
+                self._data(flow, side, off, payload, frame, ts, True)
                 s.next = off + n
                 flow.bytes[side] += n
 
@@ -467,6 +470,10 @@ class FlowTracker:
         else:
             del self._udp_lru[flow]
         self._free.append(flow.slot)
+        # Sides and flow point at each other: drop the sides, so that an ended
+        # flow is freed (with its buffers) by reference counting alone, even
+        # while the cyclic garbage collector is paused.
+        flow._sides = ()
 
     # -- TCP reassembly ---------------------------------------------------
 
@@ -622,11 +629,18 @@ class FlowTracker:
             self._trim_tail(s)
 
     def _trim_tail(self, s):
-        """Keep only the last keep_bytes delivered bytes of a side."""
-        keep = self.keep_bytes
-        tail = b"".join(s.recent)[-keep:] if keep else b""
-        s.recent = [tail] if tail else []
-        s.recent_len = len(tail)
+        """Keep only the last keep_bytes delivered bytes of a side: whole chunks
+        are dropped from the front, and the first one kept is cut if need be."""
+        recent = s.recent
+        excess = s.recent_len - self.keep_bytes
+        i = 0
+        while i < len(recent) and len(recent[i]) <= excess:
+            excess -= len(recent[i])
+            i += 1
+        del recent[:i]
+        if excess:
+            recent[0] = recent[0][excess:]
+        s.recent_len = self.keep_bytes
 
     def _drain(self, s):
         """Deliver held chunks that now start at next."""

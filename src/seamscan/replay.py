@@ -12,10 +12,12 @@ each flow when it ends.
 
 from __future__ import annotations
 
+import gc
 import math
 import time
 from collections import Counter
 from dataclasses import dataclass, field
+from operator import itemgetter
 
 from seamscan import engine
 from seamscan.capture import CaptureError, open_capture
@@ -26,6 +28,8 @@ SIDE_NAMES = ("client", "server")
 TRANSPORT_NAMES = {6: "tcp", 17: "udp"}
 _ITEM = engine.ITEM
 _ITEM_SIZE = _ITEM.size
+_PACK = _ITEM.pack_into
+_RESET = engine.ITEM_RESET
 _BATCH_ITEMS = 1024
 _BATCH_BYTES = 1 << 20
 
@@ -77,34 +81,34 @@ class ScanSink:
         self.path = path
         self.emit = emit  # called with each record dict, in order
         self.next_offset = [-1] * slots  # where each slot's state stands; -1: reset needed
-        self.ctx = {}  # flow slot -> (client ctx tuple, server ctx tuple, fields)
+        self.ctx = {}  # live flow -> (client side, server side, flow fields); see _begin
         self.matches = 0
         self.bytes = 0
         self._packed = bytearray(_ITEM_SIZE * _BATCH_ITEMS)
         self._chunks: list[bytes] = []
-        self._meta: list[tuple] = []  # per item: (flow, side, frame, ts)
+        self._meta: list[tuple] = []  # per item: (flow, frame, ts, match record template)
         self._events: list[tuple] = []  # (item position, record or flow to end)
         self._nbytes = 0
 
     # -- the tracker's sink interface ------------------------------------
     def data(self, flow, side, offset, payload, frame, ts, datagram):
-        slot = 2 * flow.slot + side
-        n = len(self._meta)
-        c = self.ctx.get(flow.slot)
-        if c is None or c[2] is not flow:
+        c = self.ctx.get(flow)
+        if c is None:
             c = self._begin(flow)
-        sc, tr, port, cflags = c[side]
-        if self.next_offset[slot] == offset:
-            flags = 0
-        else:
-            flags = engine.ITEM_RESET
-        self.next_offset[slot] = offset + len(payload)
-        _ITEM.pack_into(self._packed, n * _ITEM_SIZE, slot, flags, sc, tr, port, cflags,
-                        len(payload), 0, self._nbytes, offset)
+        slot, sc, tr, port, cflags, template = c[side]
+        size = len(payload)
+        next_offset = self.next_offset
+        flags = 0 if next_offset[slot] == offset else _RESET
+        next_offset[slot] = offset + size
+        meta = self._meta
+        n = len(meta)
+        nbytes = self._nbytes
+        _PACK(self._packed, n * _ITEM_SIZE, slot, flags, sc, tr, port, cflags, size, 0, nbytes,
+              offset)
         self._chunks.append(payload)
-        self._meta.append((flow, side, frame, ts))
-        self._nbytes += len(payload)
-        if n + 1 >= _BATCH_ITEMS or self._nbytes >= _BATCH_BYTES:
+        meta.append((flow, frame, ts, template))
+        self._nbytes = nbytes = nbytes + size
+        if n + 1 >= _BATCH_ITEMS or nbytes >= _BATCH_BYTES:
             self.flush()
 
     def gap(self, flow, side, offset, length, frame, ts):
@@ -122,12 +126,21 @@ class ScanSink:
 
     # -- batching ----------------------------------------------------------
     def _begin(self, flow):
+        """The flow's entry of ``ctx``: per side, its item's slot and context
+        fields (side, transport, port, flags) and the template of its match
+        records (every key in record order; a copy is filled per match), then
+        the flow's record fields."""
         port = flow.server[1]
         transport = TRANSPORT_NAMES[flow.proto]
         cflags = engine.CTX_HAS_PORT | (engine.CTX_DATAGRAM if transport == "udp" else 0)
         tcode = engine.TRANSPORT_CODES[transport]
-        c = ((1, tcode, port, cflags), (2, tcode, port, cflags), flow, flow_fields(flow))
-        self.ctx[flow.slot] = c
+        fields = flow_fields(flow)
+        slot = 2 * flow.slot
+        c = tuple((slot + side, side + 1, tcode, port, cflags,
+                   {"type": "match", "sig": None, **fields, "side": SIDE_NAMES[side],
+                    "start": 0, "end": 0, "file": self.path, "frame": 0, "ts": 0.0})
+                  for side in (0, 1)) + (fields,)
+        self.ctx[flow] = c
         return c
 
     def _range_record(self, kind, flow, side, offset, length, frame, ts):
@@ -135,10 +148,10 @@ class ScanSink:
                 "end": offset + length, "file": self.path, "frame": frame, "ts": ts}
 
     def _fields(self, flow):
-        c = self.ctx.get(flow.slot)
-        if c is None or c[2] is not flow:
+        c = self.ctx.get(flow)
+        if c is None:
             c = self._begin(flow)
-        return c[3]
+        return c[2]
 
     def flush(self):
         """Scan what is pending and emit the records, in delivery order."""
@@ -148,17 +161,23 @@ class ScanSink:
             found = self.scanner.scan_packed(self._packed, n, b"".join(self._chunks))
             if len(found) > 1:
                 found.sort(key=_item_of)
-        meta, events, emit, ids, path = self._meta, self._events, self.emit, self.ids, self.path
+        meta, events, emit, ids = self._meta, self._events, self.emit, self.ids
         ei = 0
+        due = events[0][0] if events else n  # item position of the next event
         for item, sig, start, end in found:
-            while ei < len(events) and events[ei][0] <= item:
+            while item >= due:
                 self._event(events[ei][1])
                 ei += 1
-            flow, side, frame, ts = meta[item]
+                due = events[ei][0] if ei < len(events) else n
+            flow, frame, ts, template = meta[item]
             flow.matches += 1
-            emit({"type": "match", "sig": ids[sig], **self._fields(flow),
-                  "side": SIDE_NAMES[side], "start": start, "end": end, "file": path,
-                  "frame": frame, "ts": ts})
+            record = template.copy()
+            record["sig"] = ids[sig]
+            record["start"] = start
+            record["end"] = end
+            record["frame"] = frame
+            record["ts"] = ts
+            emit(record)
         for _pos, ev in events[ei:]:
             self._event(ev)
         self.matches += len(found)
@@ -174,12 +193,10 @@ class ScanSink:
             return
         flow = ev
         self.emit(flow_record(flow, self._fields(flow), self.path))
-        if self.ctx.get(flow.slot, (None, None, None))[2] is flow:
-            del self.ctx[flow.slot]
+        self.ctx.pop(flow, None)
 
 
-def _item_of(m):
-    return m[0]
+_item_of = itemgetter(0)
 
 
 def flow_record(flow, fields, path) -> dict:
@@ -205,8 +222,34 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
                           max_flows=options.max_flows, tcp_idle=options.tcp_idle,
                           udp_idle=options.udp_idle)
     decoder = Decoder()
-    decode = decoder.decode
-    packet = tracker.packet
+    # The replay makes no reference cycles (an ended flow drops its own), so
+    # the cyclic collector would walk every live object again and again and
+    # find nothing: it is paused for the replay, and restarted even on error.
+    collecting = gc.isenabled()
+    gc.disable()
+    try:
+        result.error = _feed(path, decoder.decode, tracker.packet, progress)
+        decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
+        tracker.finish()
+        sink.flush()
+    finally:
+        if collecting:
+            gc.enable()
+    result.elapsed = time.perf_counter() - t0
+    c = result.counters
+    c.update(decoder.counters)
+    c.update(tracker.counters)
+    c["bytes_scanned"] = sink.bytes
+    c["matches"] = sink.matches
+    c["files"] = 1
+    if result.error:
+        c["damaged_files"] = 1
+    return result
+
+
+def _feed(path, decode, packet, progress) -> str | None:
+    """Decode every record of the capture and hand its packet to the tracker;
+    the capture's damage if it stops early, else None."""
     reader = None
     try:
         reader = open_capture(path)
@@ -221,22 +264,10 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
                     tick = 0
                     progress(reader.position())
     except CaptureError as err:
-        result.error = str(err)
+        return str(err)
     finally:
         if reader is not None:
             if progress is not None:
                 progress(reader.position())
             reader.close()
-    decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
-    tracker.finish()
-    sink.flush()
-    result.elapsed = time.perf_counter() - t0
-    c = result.counters
-    c.update(decoder.counters)
-    c.update(tracker.counters)
-    c["bytes_scanned"] = sink.bytes
-    c["matches"] = sink.matches
-    c["files"] = 1
-    if result.error:
-        c["damaged_files"] = 1
-    return result
+    return None
