@@ -243,6 +243,17 @@ static void finish(ss_state *states, ss_item *it, const lane *ln)
 }
 
 #define IDLE ((size_t)-1)
+#define LOOKAHEAD 64
+
+/* Is an item of items[j]'s slot still pending between first and j? */
+static int pending_before(const ss_item *items, size_t first, size_t j)
+{
+    size_t i;
+    for (i = first; i < j; i++)
+        if (items[i].slot == items[j].slot && !(items[i].flags & SS_ITEM_DONE))
+            return 1;
+    return 0;
+}
 
 /* The batch scheduler.  LANES lanes each hold one item; all lanes advance
  * together by the shortest remaining length, then finished lanes take the
@@ -261,32 +272,42 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
     for (k = 0; k < LANES; k++)
         held[k] = IDLE;
     while (!full) {
-        /* Fill idle lanes in item order. */
-        for (k = 0; k < LANES && next < n; k++) {
-            size_t b;
-            ss_item *it;
-            if (held[k] != IDLE)
-                continue;
-            while (next < n && (items[next].flags & SS_ITEM_DONE))
-                next++;
-            if (next >= n)
-                break;
-            it = &items[next];
-            for (b = 0; b < LANES; b++)
-                if (held[b] != IDLE && items[held[b]].slot == it->slot)
+        /* Fill idle lanes with the earliest pending items whose slot no lane
+         * holds; an item of a busy slot waits, and later items of other slots
+         * (at most LOOKAHEAD past the first pending one) go ahead of it.
+         * Items of one slot still start in their order: the search always
+         * begins at the first pending item. */
+        while (next < n && (items[next].flags & SS_ITEM_DONE))
+            next++;
+        {
+            size_t j = next, stop = n - next > LOOKAHEAD ? next + LOOKAHEAD : n, b;
+            for (k = 0; k < LANES && j < stop; k++) {
+                ss_item *it;
+                if (held[k] != IDLE)
+                    continue;
+                for (; j < stop; j++) {
+                    if (items[j].flags & SS_ITEM_DONE)
+                        continue;
+                    for (b = 0; b < LANES; b++)
+                        if (held[b] != IDLE && items[held[b]].slot == items[j].slot)
+                            break;
+                    if (b == LANES && !pending_before(items, next, j))
+                        break;
+                }
+                if (j >= stop)
                     break;
-            if (b < LANES)
-                break; /* its slot is busy: wait */
-            begin(t, states, it, (uint32_t)next, cap, &ln[k]);
-            if (it->done >= it->len) { /* nothing to scan (e.g. a reset alone) */
-                finish(states, it, &ln[k]);
-                next++;
-                k--;
-                continue;
+                it = &items[j];
+                begin(t, states, it, (uint32_t)j, cap, &ln[k]);
+                if (it->done >= it->len) { /* nothing to scan (e.g. a reset alone) */
+                    finish(states, it, &ln[k]);
+                    j++;
+                    k--;
+                    continue;
+                }
+                held[k] = j++;
+                p[k] = data + it->data_off + it->done;
+                active++;
             }
-            held[k] = next++;
-            p[k] = data + it->data_off + it->done;
-            active++;
         }
         if (active == 0)
             break;

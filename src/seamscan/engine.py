@@ -22,7 +22,7 @@ CTX_DATAGRAM = 0x02
 ITEM_RESET = 0x01
 ITEM = struct.Struct("<IIBBHIIIQQ")  # ss_item: slot flags ctx(side transport port flags) len done data_off reset_offset
 MATCH = struct.Struct("<IIQQ")  # ss_match: item sig start end
-_BUFFER_MATCHES = 4096
+_BUFFER_MATCHES = 65536
 
 
 class Match(NamedTuple):
