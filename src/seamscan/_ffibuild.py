@@ -1,5 +1,8 @@
 """cffi build script (out-of-line API mode): compiles csrc/ into seamscan._seamcore.
 
+The host extension also holds ``csrc/host/front.c``, the replay's host-only
+record framing and fast decode (not part of the device runtime).
+
 Run by the package build (``pip install .`` / ``pip install -e .``) through
 ``cffi_modules``; the C sources are the same files a device compiles.
 """
@@ -38,6 +41,9 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
                size_t len, ss_match *out, size_t cap, size_t *nout);
 size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
                      const uint8_t *data, ss_match *out, size_t cap, size_t *nout);
+size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint32_t units,
+                       uint32_t limit, int ethernet, uint8_t *out, size_t cap, size_t *end_pos,
+                       size_t *fast);
 """
 
 def _host_flags() -> list[str]:
@@ -57,8 +63,10 @@ ffibuilder = FFI()
 ffibuilder.cdef(CDEF)
 ffibuilder.set_source(
     "seamscan._seamcore",
-    '#include "seam.h"',
-    sources=[str(p.relative_to(ROOT)) for p in sorted(CSRC.glob("seam_*.c"))],
+    '#include "seam.h"\n#include "host/front.h"',
+    # the device runtime, then the host-only replay front end (csrc/host/)
+    sources=[str(p.relative_to(ROOT)) for p in sorted(CSRC.glob("seam_*.c"))]
+    + [str((CSRC / "host" / "front.c").relative_to(ROOT))],
     include_dirs=[str(CSRC.relative_to(ROOT))],
     extra_compile_args=["-O3", "-std=c99", *_host_flags()],
 )

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import gc
 import math
+import os
 import time
 from collections import Counter
 from dataclasses import dataclass, field
@@ -199,6 +200,13 @@ class ScanSink:
 _item_of = itemgetter(0)
 
 
+def fastpath_enabled() -> bool:
+    """Whether classic pcap is framed and its common headers decoded in C
+    (``seamscan.fastpath``); ``SEAMSCAN_FASTPATH=0`` selects the pure-Python
+    reader and decoder, the reference the C front end is tested against."""
+    return os.environ.get("SEAMSCAN_FASTPATH", "1") != "0"
+
+
 def flow_record(flow, fields, path) -> dict:
     return {"type": "flow", **fields, "file": path, "first_ts": flow.first_ts,
             "last_ts": flow.last_ts, "client_packets": flow.packets[CLIENT],
@@ -228,7 +236,11 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
     collecting = gc.isenabled()
     gc.disable()
     try:
-        result.error = _feed(path, decoder.decode, tracker.packet, progress)
+        if fastpath_enabled():
+            from seamscan import fastpath
+            result.error = fastpath.feed(path, decoder, tracker.packet, progress)
+        else:
+            result.error = _feed(path, decoder.decode, tracker.packet, progress)
         decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
         tracker.finish()
         sink.flush()

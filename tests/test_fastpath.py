@@ -1,0 +1,314 @@
+"""The C front end (``seamscan.fastpath``) against the pure-Python path.
+
+``fastpath.feed`` must hand the flow tracker exactly the packets that
+``replay._feed`` does (same tuples, same float timestamps, same frame
+numbers), leave the decoder's counters the same and stop with the same
+error text on damage; with it on (the default; ``SEAMSCAN_FASTPATH=0`` is off) a
+replay's records and counters must not change.  Captures are written
+here byte by byte (classic pcap layout per draft-ietf-opsawg-pcap: a
+24-byte file header, then per record a 16-byte header of seconds,
+fraction, captured length and original length), with frames built by
+scapy; random captures mutate and cut those frames.
+
+Outside oracle: scapy's ``rdpcap`` and its dissection give the frame count
+and every TCP/UDP frame's ports and payload.
+
+The data is an invented smart-building lab in the documentation address
+ranges (192.0.2.0/24, 198.51.100.0/24, 203.0.113.0/24, 2001:db8::/32).
+"""
+
+from __future__ import annotations
+
+import gzip
+import random
+import struct
+from pathlib import Path
+
+import pytest
+from scapy.layers.inet import ICMP, IP, TCP, UDP
+from scapy.layers.inet6 import IPv6, IPv6ExtHdrHopByHop
+from scapy.layers.l2 import ARP, Dot1Q, Ether
+from scapy.packet import Padding
+from scapy.utils import rdpcap
+
+import seamscan
+from seamscan import capture, fastpath, replay
+from seamscan.decode import Decoder
+from seamscan.replay import ReplayOptions, replay_file
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "pcaps_demo"
+ETH = dict(src="02:00:00:00:00:0a", dst="02:00:00:00:00:15")
+HVAC, CONSOLE, LIGHTS = "198.51.100.21", "192.0.2.10", "198.51.100.22"
+V6_CONSOLE, V6_LIGHTS = "2001:db8:7e::10", "2001:db8:7e:2::22"
+
+
+# --- writing captures -------------------------------------------------------------
+
+def pcap_bytes(records, *, big=False, nano=False, linktype=1, snaplen=65535) -> bytes:
+    """A classic pcap file: ``records`` are (seconds, fraction, frame[, original length])."""
+    e = ">" if big else "<"
+    magic = 0xA1B23C4D if nano else 0xA1B2C3D4
+    out = [struct.pack(e + "IHHiIII", magic, 2, 4, 0, 0, snaplen, linktype)]
+    for rec in records:
+        sec, frac, frame = rec[:3]
+        orig = rec[3] if len(rec) > 3 else len(frame)
+        out.append(struct.pack(e + "IIII", sec, frac, len(frame), orig) + frame)
+    return b"".join(out)
+
+
+def lab_frames() -> list[bytes]:
+    """One frame of each kind the decoder tells apart, fast path or not."""
+    http = b"POST /hvac/v2/setpoint HTTP/1.1\r\nHost: hvac\r\n\r\n{\"zone\":3}"
+    tele = b"\x81\x0a\x00\x11meter=42"
+    v4 = IP(src=CONSOLE, dst=HVAC)
+    v6 = IPv6(src=V6_CONSOLE, dst=V6_LIGHTS)
+    pkts = [
+        Ether(**ETH) / v4 / TCP(sport=40100, dport=80, seq=1001, ack=5001, flags="PA") / http,
+        Ether(**ETH) / v4 / TCP(sport=40100, dport=80, seq=1001, flags="S"),
+        Ether(**ETH) / v4 / TCP(sport=40100, dport=80, flags="A", options=[("NOP", None)] * 4)
+        / b"opts",
+        Ether(**ETH) / IP(src="198.51.100.30", dst="192.0.2.40") / UDP(sport=47100, dport=47100)
+        / tele,
+        Ether(**ETH) / IP(src="198.51.100.30", dst="192.0.2.40") / UDP(sport=47110, dport=47110)
+        / b"hb" / Padding(load=b"\x00" * 12),  # short frame: Ethernet padding
+        Ether(**ETH) / v6 / TCP(sport=40200, dport=8080, seq=7, flags="PA") / b"GET /lights/1",
+        Ether(**ETH) / v6 / UDP(sport=47100, dport=47100) / tele,
+        Ether(**ETH) / v6 / IPv6ExtHdrHopByHop() / UDP(sport=47100, dport=47100) / tele,
+        Ether(**ETH) / IP(src=CONSOLE, dst=HVAC, options=b"\x01\x01\x01\x00")
+        / TCP(sport=40101, dport=80, flags="PA") / b"with ip options",
+        Ether(**ETH) / IP(src="198.51.100.21", dst="192.0.2.10", flags="MF", frag=0)
+        / UDP(sport=47200, dport=47200) / (b"firmware" * 4),
+        Ether(**ETH) / Dot1Q(vlan=30) / IP(src=CONSOLE, dst="198.51.100.23")
+        / TCP(sport=40300, dport=80, flags="PA") / b"GET /door/state",
+        Ether(**ETH) / v4 / ICMP() / b"ping",
+        Ether(**ETH) / ARP(psrc=CONSOLE, pdst=HVAC),
+        Ether(**ETH) / v4 / UDP(sport=1, dport=2, len=4) / b"bad udp length",
+        Ether(**ETH) / v4 / TCP(sport=40100, dport=80, dataofs=15, flags="PA") / b"x",
+    ]
+    return [bytes(p) for p in pkts]
+
+
+def write(tmp_path, data: bytes, name="lab.pcap") -> Path:
+    path = tmp_path / name
+    path.write_bytes(data)
+    return path
+
+
+# --- running both paths -----------------------------------------------------------
+
+class CountingLib:
+    """``fastpath.lib`` with its record calls counted."""
+
+    def __init__(self, lib):
+        self.lib = lib
+        self.calls = 0
+
+    def __getattr__(self, name):
+        return getattr(self.lib, name)
+
+    def sf_pcap_records(self, *args):
+        self.calls += 1
+        return self.lib.sf_pcap_records(*args)
+
+
+def both(path, monkeypatch=None):
+    """(packets, counters, error) of the Python path, then of the C path;
+    with ``monkeypatch``, also that C framed at least one buffer."""
+    got = []
+    for use_c in (False, True):
+        decoder = Decoder()
+        packets = []
+        if use_c:
+            counting = CountingLib(fastpath.lib)
+            if monkeypatch is not None:
+                monkeypatch.setattr(fastpath, "lib", counting)
+            error = fastpath.feed(path, decoder, packets.append, None)
+            if monkeypatch is not None:
+                assert counting.calls > 0
+        else:
+            error = replay._feed(path, decoder.decode, packets.append, None)
+        got.append((packets, decoder.counters, error))
+    return got
+
+
+def assert_same(path, monkeypatch=None):
+    py, c = both(path, monkeypatch)
+    assert c[2] == py[2]
+    assert c[1] == py[1]
+    assert len(c[0]) == len(py[0])
+    for a, b in zip(c[0], py[0], strict=True):
+        assert tuple(a) == tuple(b)
+        assert type(a) is type(b)
+    return py
+
+
+# --- crafted captures ---------------------------------------------------------------
+
+@pytest.mark.parametrize("big", [False, True])
+@pytest.mark.parametrize("nano", [False, True])
+def test_every_frame_kind_both_byte_orders_and_resolutions(tmp_path, monkeypatch, big, nano):
+    frames = lab_frames()
+    recs = [(1_700_000_000 + i, (i * 123_457) % (10**9 if nano else 10**6), f)
+            for i, f in enumerate(frames)]
+    path = write(tmp_path, pcap_bytes(recs, big=big, nano=nano))
+    packets, counters, error = assert_same(path, monkeypatch)
+    assert error is None and counters["frames"] == len(frames)
+    # scapy's own reader and dissection (outside oracle): frame count, and
+    # ports and payload of every fast-path TCP/UDP frame (first seven kinds
+    # but the padded one, whose payload scapy reports apart from the padding)
+    scapy_pkts = rdpcap(str(path))
+    assert len(scapy_pkts) == len(frames)
+    by_frame = {p.frame: p for p in packets}
+    for n, sp in enumerate(scapy_pkts, 1):
+        l4 = sp[TCP] if TCP in sp else sp[UDP] if UDP in sp else None
+        if l4 is None or n not in by_frame:
+            continue
+        pkt = by_frame[n]
+        assert (pkt.sport, pkt.dport) == (l4.sport, l4.dport)
+        data = bytes(l4.payload)
+        if Padding in sp:
+            data = data[: len(data) - len(sp[Padding].load)]
+        if n in (1, 3, 4, 5, 6, 7):
+            assert pkt.payload == data
+
+
+def test_c_decodes_exactly_the_fast_path_kinds(tmp_path):
+    # the first seven kinds of lab_frames are the decoder's fast path
+    # (untagged Ethernet, IPv4 without options / IPv6 without extension
+    # headers, not a fragment, TCP or UDP, lengths consistent); C decodes
+    # those and leaves the rest to the decoder
+    data = pcap_bytes([(1, 0, f) for f in lab_frames()])
+    rec = fastpath._REC
+    out = bytearray(64 * rec.size)
+    end, fast = fastpath.ffi.new("size_t *"), fastpath.ffi.new("size_t *")
+    n = fastpath.lib.sf_pcap_records(fastpath.ffi.from_buffer(data), len(data), 24, 0, 10**6,
+                                     capture.MAX_RECORD, 1, fastpath.ffi.from_buffer(out), 64,
+                                     end, fast)
+    assert n == len(lab_frames()) and end[0] == len(data) and fast[0] == 7
+    kinds = [r[0] for r in rec.iter_unpack(out[: n * rec.size])]
+    assert kinds == [0] * 7 + [1] * (n - 7)
+
+
+def test_large_nanosecond_timestamps_round_like_python(tmp_path):
+    # sec * 10**9 + frac reaches past 2**53, beyond which a binary64 double
+    # (IEEE 754: 53-bit significand) no longer holds every integer: the C
+    # side leaves the division to Python, whose int / int is correctly
+    # rounded (recalled from memory).
+    frame = lab_frames()[0]
+    recs = [(sec, frac, frame) for sec in (0, 1, 2**23, 9_007_199, 2**32 - 1)
+            for frac in (0, 1, 999_999_999, 2**32 - 1)]
+    assert_same(write(tmp_path, pcap_bytes(recs, nano=True)))
+    assert_same(write(tmp_path, pcap_bytes(recs), "micro.pcap"))
+
+
+def test_other_link_types_go_through_the_decoder(tmp_path, monkeypatch):
+    raw = [bytes(IP(src=CONSOLE, dst=HVAC) / TCP(sport=40100, dport=80, flags="PA") / b"raw ip")]
+    path = write(tmp_path, pcap_bytes([(1, 2, raw[0])] * 5, linktype=101))
+    packets, counters, _ = assert_same(path, monkeypatch)
+    assert counters["decoded"] == 5 and packets[0].payload == b"raw ip"
+
+
+def test_many_records_across_buffer_refills(tmp_path, monkeypatch):
+    # more records than one C call writes and more bytes than the reader's
+    # chunk, with a few records longer than a chunk's remainder
+    rng = random.Random(7)
+    frames = lab_frames()
+    big = bytes(Ether(**ETH) / IP(src=CONSOLE, dst=HVAC)
+                / TCP(sport=40100, dport=80, flags="PA") / bytes(60_000))
+    recs = []
+    for i in range(12_000):
+        frame = big if i % 997 == 0 else rng.choice(frames)
+        recs.append((1_700_000_000 + i // 100, i % 100 * 10_000, frame))
+    data = pcap_bytes(recs)
+    assert len(data) > 4 * capture.CHUNK
+    packets, counters, _ = assert_same(write(tmp_path, data), monkeypatch)
+    assert counters["frames"] == 12_000
+    gz = tmp_path / "lab.pcap.gz"
+    gz.write_bytes(gzip.compress(data, compresslevel=1))
+    assert_same(gz, monkeypatch)
+
+
+@pytest.mark.parametrize("cut", ["mid_header", "mid_frame", "file_header", "too_long"])
+def test_damage_gives_the_same_error_and_keeps_the_packets(tmp_path, cut):
+    frames = lab_frames()
+    data = pcap_bytes([(5, i, f) for i, f in enumerate(frames * 3)])
+    if cut == "mid_header":
+        data = data[: len(data) - len(frames[-1]) - 7]
+    elif cut == "mid_frame":
+        data = data[:-5]
+    elif cut == "file_header":
+        data = data[:20]
+    else:
+        data += struct.pack("<IIII", 9, 0, 1 << 27, 1 << 27) + b"tail"
+    path = write(tmp_path, data)
+    packets, _, error = assert_same(path)
+    assert error is not None and str(path) in error
+    if cut != "file_header":
+        assert len(packets) > 0
+
+
+def test_every_cut_of_a_short_capture(tmp_path):
+    frames = lab_frames()[:4]
+    data = pcap_bytes([(5, i, f) for i, f in enumerate(frames)], big=True)
+    for end in range(24, len(data) + 1):
+        assert_same(write(tmp_path, data[:end]))
+
+
+def test_pcapng_and_gzip_stay_on_the_reader(tmp_path):
+    for name in ("lab-trunk.pcapng", "lab-http.pcap", "lab-udp.pcap"):
+        assert_same(DEMO / name)
+    gz = tmp_path / "lab-http.pcap.gz"
+    gz.write_bytes(gzip.compress((DEMO / "lab-http.pcap").read_bytes()))
+    assert_same(gz)
+
+
+def test_random_captures(tmp_path):
+    rng = random.Random(20261201)
+    frames = lab_frames()
+    for trial in range(60):
+        recs = []
+        for _ in range(rng.randrange(1, 40)):
+            frame = bytearray(rng.choice(frames))
+            for _ in range(rng.randrange(0, 4)):  # damage a header byte
+                frame[rng.randrange(min(70, len(frame)))] = rng.randrange(256)
+            if rng.random() < 0.2:
+                frame = frame[: rng.randrange(len(frame) + 1)]
+            recs.append((rng.randrange(2**32), rng.randrange(2**32), bytes(frame)))
+        data = pcap_bytes(recs, big=rng.random() < 0.5, nano=rng.random() < 0.5,
+                          linktype=rng.choice((1, 1, 1, 101, 113)))
+        if rng.random() < 0.3:
+            data = data[: rng.randrange(24, len(data) + 1)]
+        assert_same(write(tmp_path, data, f"r{trial}.pcap"))
+
+
+# --- whole replays -----------------------------------------------------------------
+
+def replay_both(path, table, monkeypatch, **options):
+    out = []
+    for flag in ("0", "1"):
+        monkeypatch.setenv("SEAMSCAN_FASTPATH", flag)
+        result = replay_file(path, table, ReplayOptions(**options))
+        out.append((result.records, dict(result.counters), result.error))
+    monkeypatch.delenv("SEAMSCAN_FASTPATH")
+    return out
+
+
+@pytest.mark.parametrize("limits", [{}, {"max_flows": 3, "hold_bytes": 64, "tcp_idle": 1}])
+def test_replay_records_and_counters_unchanged(tmp_path, monkeypatch, limits):
+    table = seamscan.compile(seamscan.load_signatures(DEMO / "demo-signatures.toml"))
+    for name in ("lab-http.pcap", "lab-udp.pcap", "lab-trunk.pcapng"):
+        py, c = replay_both(DEMO / name, table, monkeypatch, **limits)
+        assert c == py
+    rng = random.Random(3)
+    frames = lab_frames()
+    recs = [(1_700_000_000 + i, 0, rng.choice(frames)) for i in range(2000)]
+    py, c = replay_both(write(tmp_path, pcap_bytes(recs)), table, monkeypatch, **limits)
+    assert c == py
+
+
+def test_switch_is_on_by_default_and_0_selects_python(monkeypatch):
+    monkeypatch.delenv("SEAMSCAN_FASTPATH", raising=False)
+    assert replay.fastpath_enabled()
+    monkeypatch.setenv("SEAMSCAN_FASTPATH", "0")
+    assert not replay.fastpath_enabled()
