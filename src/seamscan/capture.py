@@ -107,6 +107,15 @@ def open_capture(path) -> CaptureReader:
     return CaptureReader(path)
 
 
+def pcap_header(buf: bytes):
+    """(linktype, timestamp units per second, largest record, record header
+    unpacker) of a classic pcap file whose first 24 bytes are ``buf[:24]``."""
+    endian, units = _PCAP_MAGICS[buf[:4]]
+    _, _, _, _, _, snaplen, linkfield = struct.unpack_from(endian + "IHHiIII", buf, 0)
+    limit = min(max(MAX_RECORD, snaplen), 1 << 26)
+    return linkfield & 0xFFFF, units, limit, struct.Struct(endian + "IIII").unpack_from
+
+
 class CaptureReader:
     """One pass over a capture file's frames; see the module docstring.
 
@@ -220,40 +229,46 @@ class CaptureReader:
     def _pcap_records(self, buf: bytes) -> Iterator[tuple[int, float, int, bytes]]:
         """Records of a classic pcap file; ``buf`` holds its 24-byte header
         and possibly more."""
-        endian, units = _PCAP_MAGICS[buf[:4]]
-        _, _, _, _, _, snaplen, linkfield = struct.unpack_from(endian + "IHHiIII", buf, 0)
-        linktype = linkfield & 0xFFFF
-        limit = min(max(MAX_RECORD, snaplen), 1 << 26)
-        unpack = struct.Struct(endian + "IIII").unpack_from
+        linktype, units, limit, unpack = pcap_header(buf)
         base = 0  # stream offset of buf[0]
         pos = 24
         frame = 0
         while True:
-            if len(buf) - pos < 16:
-                base += pos
-                buf = self._fill(buf[pos:], 16, frame)
-                pos = 0
-                if len(buf) < 16:
-                    if buf:
-                        raise self._error(f"record {frame + 1} header is truncated: "
-                                          f"{len(buf)} of 16 bytes", base, frame)
-                    return
-            sec, frac, caplen, _ = unpack(buf, pos)
-            if caplen > limit:
-                raise self._error(f"record {frame + 1} claims {caplen} bytes, more than "
-                                  f"the {limit} a frame may hold", base + pos, frame)
-            end = pos + 16 + caplen
-            if end > len(buf):
-                base += pos
-                buf = self._fill(buf[pos:], 16 + caplen, frame)
-                pos = 0
-                end = 16 + caplen
-                if end > len(buf):
-                    raise self._error(f"record {frame + 1} claims {caplen} bytes but the "
-                                      f"file ends after {len(buf) - 16}", base, frame)
+            step = self._pcap_record(buf, pos, base, frame, unpack, limit)
+            if step is None:
+                return
+            buf, pos, base, sec, frac, data = step
             frame += 1
-            yield frame, (sec * units + frac) / units, linktype, buf[pos + 16:end]
-            pos = end
+            yield frame, (sec * units + frac) / units, linktype, data
+
+    def _pcap_record(self, buf, pos, base, frame, unpack, limit):
+        """One record at ``buf[pos:]`` (refilling the buffer as needed):
+        (buf, position after it, base, seconds, fraction, frame bytes), or
+        None at the clean end of the file; damage raises CaptureError.
+        ``base`` is the file offset of ``buf[0]``; ``frame`` the records so far."""
+        if len(buf) - pos < 16:
+            base += pos
+            buf = self._fill(buf[pos:], 16, frame)
+            pos = 0
+            if len(buf) < 16:
+                if buf:
+                    raise self._error(f"record {frame + 1} header is truncated: "
+                                      f"{len(buf)} of 16 bytes", base, frame)
+                return None
+        sec, frac, caplen, _ = unpack(buf, pos)
+        if caplen > limit:
+            raise self._error(f"record {frame + 1} claims {caplen} bytes, more than "
+                              f"the {limit} a frame may hold", base + pos, frame)
+        end = pos + 16 + caplen
+        if end > len(buf):
+            base += pos
+            buf = self._fill(buf[pos:], 16 + caplen, frame)
+            pos = 0
+            end = 16 + caplen
+            if end > len(buf):
+                raise self._error(f"record {frame + 1} claims {caplen} bytes but the "
+                                  f"file ends after {len(buf) - 16}", base, frame)
+        return buf, end, base, sec, frac, buf[pos + 16:end]
 
     # -- pcapng ----------------------------------------------------------
 

@@ -14,7 +14,7 @@ decoder's fast path takes (untagged Ethernet, IPv4 without options and not
 a fragment or IPv6 without extension headers, TCP or UDP); every other
 frame goes through ``Decoder.decode`` unchanged.  A record that is not
 wholly in the buffer, or too long, is handled by the same steps as
-``CaptureReader._pcap_records`` (refill, or the exact ``CaptureError``).
+``CaptureReader._pcap_record``, the reader's own one-record step (refill, or the exact ``CaptureError``).
 A pcapng file is read by the reader as before.
 
 Record written by C per frame (``SF_REC_SIZE`` = 48 bytes, host byte
@@ -35,7 +35,7 @@ from __future__ import annotations
 import struct
 
 from seamscan._seamcore import ffi, lib
-from seamscan.capture import _PCAP_MAGICS, MAX_RECORD, CaptureError, CaptureReader
+from seamscan.capture import _PCAP_MAGICS, CaptureError, CaptureReader, pcap_header
 from seamscan.decode import Packet
 
 _REC = struct.Struct("=BBBBHHIIIIIIII d")
@@ -59,17 +59,9 @@ def feed(path, decoder, packet, progress) -> str | None:
     try:
         reader = _Reader(path)
         if reader.format != "pcap":
-            decode = decoder.decode
-            tick = 0
-            for frame_no, ts, linktype, buf in reader:
-                pkt = decode(frame_no, ts, linktype, buf)
-                if pkt is not None:
-                    packet(pkt)
-                if progress is not None:
-                    tick += 1
-                    if tick == 4096:
-                        tick = 0
-                        progress(reader.position())
+            from seamscan.replay import decode_records
+
+            decode_records(reader, decoder.decode, packet, progress)
             return None
         _pcap(reader, reader.head, decoder, packet, progress)
     except CaptureError as err:
@@ -86,12 +78,8 @@ def _pcap(reader, buf, decoder, packet, progress) -> None:
     """The records of a classic pcap file whose buffer ``buf`` starts with
     its header: ``CaptureReader._pcap_records`` with the complete records
     of each buffer framed (and mostly decoded) in C."""
-    endian, units = _PCAP_MAGICS[buf[:4]]
-    _, _, _, _, _, snaplen, linkfield = struct.unpack_from(endian + "IHHiIII", buf, 0)
-    linktype = linkfield & 0xFFFF
-    limit = min(max(MAX_RECORD, snaplen), 1 << 26)
-    unpack = struct.Struct(endian + "IIII").unpack_from
-    big = int(endian == ">")
+    linktype, units, limit, unpack = pcap_header(buf)
+    big = int(_PCAP_MAGICS[buf[:4]][0] == ">")
     ethernet = int(linktype == 1)
     decode = decoder.decode
     counts = decoder._counts
@@ -131,32 +119,12 @@ def _pcap(reader, buf, decoder, packet, progress) -> None:
             if n == _REC_CAP:
                 continue
         # The next record is not wholly in the buffer, or is too long: the
-        # reader's own steps, for this one record.
-        if len(buf) - pos < 16:
-            base += pos
-            buf = reader._fill(buf[pos:], 16, frame)
-            pos = 0
-            if len(buf) < 16:
-                if buf:
-                    raise reader._error(f"record {frame + 1} header is truncated: "
-                                        f"{len(buf)} of 16 bytes", base, frame)
-                return
-        sec, frac, caplen, _ = unpack(buf, pos)
-        if caplen > limit:
-            raise reader._error(f"record {frame + 1} claims {caplen} bytes, more than "
-                                f"the {limit} a frame may hold", base + pos, frame)
-        end = pos + 16 + caplen
-        if end > len(buf):
-            base += pos
-            buf = reader._fill(buf[pos:], 16 + caplen, frame)
-            pos = 0
-            end = 16 + caplen
-            if end > len(buf):
-                raise reader._error(f"record {frame + 1} claims {caplen} bytes but the "
-                                    f"file ends after {len(buf) - 16}", base, frame)
+        # reader's own step, for this one record.
+        step = reader._pcap_record(buf, pos, base, frame, unpack, limit)
+        if step is None:
+            return
+        buf, pos, base, sec, frac, data = step
         frame += 1
-        pkt = decode(frame, (sec * units + frac) / units, linktype, buf[pos + 16:end])
+        pkt = decode(frame, (sec * units + frac) / units, linktype, data)
         if pkt is not None:
             packet(pkt)
-        pos = end
-

@@ -265,16 +265,7 @@ def _feed(path, decode, packet, progress) -> str | None:
     reader = None
     try:
         reader = open_capture(path)
-        tick = 0
-        for frame_no, ts, linktype, buf in reader:
-            pkt = decode(frame_no, ts, linktype, buf)
-            if pkt is not None:
-                packet(pkt)
-            if progress is not None:
-                tick += 1
-                if tick == 4096:
-                    tick = 0
-                    progress(reader.position())
+        decode_records(reader, decode, packet, progress)
     except CaptureError as err:
         return str(err)
     finally:
@@ -283,3 +274,18 @@ def _feed(path, decode, packet, progress) -> str | None:
                 progress(reader.position())
             reader.close()
     return None
+
+
+def decode_records(reader, decode, packet, progress) -> None:
+    """Every record of an open reader through ``decode`` into ``packet``,
+    reporting the reader's position every 4096 records."""
+    tick = 0
+    for frame_no, ts, linktype, buf in reader:
+        pkt = decode(frame_no, ts, linktype, buf)
+        if pkt is not None:
+            packet(pkt)
+        if progress is not None:
+            tick += 1
+            if tick == 4096:
+                tick = 0
+                progress(reader.position())
