@@ -245,16 +245,6 @@ static void finish(ss_state *states, ss_item *it, const lane *ln)
 #define IDLE ((size_t)-1)
 #define LOOKAHEAD 64
 
-/* Is an item of items[j]'s slot still pending between first and j? */
-static int pending_before(const ss_item *items, size_t first, size_t j)
-{
-    size_t i;
-    for (i = first; i < j; i++)
-        if (items[i].slot == items[j].slot && !(items[i].flags & SS_ITEM_DONE))
-            return 1;
-    return 0;
-}
-
 /* The batch scheduler.  LANES lanes each hold one item; all lanes advance
  * together by the shortest remaining length, then finished lanes take the
  * next items.  An item whose slot is held by a busy lane waits (items of one
@@ -275,8 +265,10 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
         /* Fill idle lanes with the earliest pending items whose slot no lane
          * holds; an item of a busy slot waits, and later items of other slots
          * (at most LOOKAHEAD past the first pending one) go ahead of it.
-         * Items of one slot still start in their order: the search always
-         * begins at the first pending item. */
+         * Items of one slot still start in their order: each pass searches
+         * from the first pending item, and within a pass the held slots
+         * only grow, so an earlier pending item of a free slot is always
+         * taken before a later one. */
         while (next < n && (items[next].flags & SS_ITEM_DONE))
             next++;
         {
@@ -291,7 +283,7 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
                     for (b = 0; b < LANES; b++)
                         if (held[b] != IDLE && items[held[b]].slot == items[j].slot)
                             break;
-                    if (b == LANES && !pending_before(items, next, j))
+                    if (b == LANES)
                         break;
                 }
                 if (j >= stop)
