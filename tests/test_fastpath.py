@@ -312,3 +312,152 @@ def test_switch_is_on_by_default_and_0_selects_python(monkeypatch):
     assert replay.fastpath_enabled()
     monkeypatch.setenv("SEAMSCAN_FASTPATH", "0")
     assert not replay.fastpath_enabled()
+
+
+# --- the fast lane against the pure-Python tracker ---------------------------------
+#
+# The lane (csrc/host/lane.c) repeats FlowTracker's fast path for flow sides
+# the tracker lends it; every other packet stops it.  Random conversations
+# that keep crossing between the two (SYN/FIN/RST, reordering,
+# retransmissions, disagreeing overlaps, lost segments, VLAN-tagged frames
+# of the same flows that only the Python decoder takes, idle timeouts,
+# eviction, a flow from an endpoint to itself, timestamps that go back)
+# must give exactly the records and counters of SEAMSCAN_FASTPATH=0.
+
+LANE_SIGS = seamscan.signature_set([
+    {"id": "lane-ab", "text": "ab"},
+    {"id": "lane-abca", "text": "abca"},
+    {"id": "lane-cc-client", "text": "cc", "side": "client"},
+    {"id": "lane-bcb-server", "text": "bcb", "side": "server"},
+    {"id": "lane-aaa-head", "text": "aaa", "window": [0, 40]},
+    {"id": "lane-udp-acb", "text": "acb", "transport": "udp", "scope": "stream"},
+    {"id": "lane-dgram-ba", "text": "ba", "transport": "udp"},
+])
+LANE_HOSTS = {"v4": ["192.0.2.10", "198.51.100.21", "203.0.113.5"],
+              "v6": ["2001:db8:7e::10", "2001:db8:7e:2::22"]}
+
+
+def raw_frame(v6, proto, src, dst, sport, dport, seq, flags, payload, vlan=False):
+    """Ethernet (optionally 802.1Q-tagged) + IPv4/IPv6 + TCP/UDP, by hand
+    (RFC 791, RFC 8200, RFC 9293, RFC 768 header layouts; checksums 0:
+    the replay does not verify them)."""
+    if proto == 6:
+        l4 = struct.pack("!HHIIBBHHH", sport, dport, seq, 1, 5 << 4, flags, 65535, 0, 0)
+    else:
+        l4 = struct.pack("!HHHH", sport, dport, 8 + len(payload), 0)
+    l4 += payload
+    if v6:
+        ip = struct.pack("!IHBB", 6 << 28, len(l4), proto, 64) + src + dst
+        etype = 0x86DD
+    else:
+        ip = struct.pack("!BBHHHBBH", 0x45, 0, 20 + len(l4), 0, 0x4000, 64, proto, 0) + src + dst
+        etype = 0x0800
+    eth = bytes.fromhex("020000000015020000000a")  # dst, then src minus its last byte
+    eth += b"\x0a"
+    tag = struct.pack("!HH", 0x8100, 7) if vlan else b""
+    return eth + tag + struct.pack("!H", etype) + ip + l4
+
+
+def lane_capture(rng, nflows):
+    """Records (sec, usec, frame) of random interleaved conversations."""
+    import ipaddress
+
+    convs = []
+    for f in range(nflows):
+        fam = rng.choice(("v4", "v6"))
+        a, b = rng.sample(LANE_HOSTS[fam], 2)
+        src, dst = ipaddress.ip_address(a).packed, ipaddress.ip_address(b).packed
+        v6 = fam == "v6"
+        sport, dport = rng.choice([(40000 + f, 80), (80, 40000 + f), (5000, 5000)])
+        if rng.random() < 0.1:
+            dst, dport = src, sport  # a flow from an endpoint to itself
+        proto = 17 if rng.random() < 0.25 else 6
+        pkts = []  # (direction, seq, flags, payload)
+        if proto == 17:
+            for _ in range(rng.randrange(1, 30)):
+                pkts.append((rng.randrange(2), 0, 0, bytes(rng.choice(b"abc") for _ in
+                                                           range(rng.randrange(0, 12)))))
+        else:
+            isn = [rng.randrange(2**32), rng.randrange(2**32)]
+            nxt = [0, 0]
+            if rng.random() < 0.8:
+                pkts.append((0, isn[0], 0x02, b""))
+                pkts.append((1, isn[1], 0x12, b""))
+                isn = [(isn[0] + 1) % 2**32, (isn[1] + 1) % 2**32]
+            for _ in range(rng.randrange(1, 40)):
+                d = rng.randrange(2)
+                n = rng.choice([0, 1, 2, 3, 5, 8, 13])
+                data = bytes(rng.choice(b"abc") for _ in range(n))
+                pkts.append((d, (isn[d] + nxt[d]) % 2**32, 0x18 if n else 0x10, data))
+                nxt[d] += n
+            for d in (0, 1):
+                if rng.random() < 0.6:
+                    pkts.append((d, (isn[d] + nxt[d]) % 2**32, 0x11, b""))
+            if rng.random() < 0.15:
+                pkts.append((rng.randrange(2), (isn[0] + nxt[0]) % 2**32, 0x04, b""))
+            # perturb: swap neighbours, repeat, overlap with other bytes, lose
+            for _ in range(rng.randrange(0, 6)):
+                i = rng.randrange(len(pkts))
+                kind = rng.random()
+                if kind < 0.35 and i + 1 < len(pkts):
+                    pkts[i], pkts[i + 1] = pkts[i + 1], pkts[i]
+                elif kind < 0.6:
+                    pkts.insert(rng.randrange(i, len(pkts) + 1), pkts[i])
+                elif kind < 0.8 and pkts[i][3]:
+                    d, seq, fl, data = pkts[i]
+                    other = bytes(rng.choice(b"abc") for _ in data)
+                    pkts.insert(rng.randrange(i, len(pkts) + 1), (d, seq, fl, other))
+                else:
+                    del pkts[i]
+        convs.append((v6, proto, src, dst, sport, dport, pkts))
+    order = [c for c, conv in enumerate(convs) for _ in conv[6]]
+    rng.shuffle(order)
+    pos = [0] * len(convs)
+    t = 1_700_000_000.0
+    recs = []
+    for c in order:
+        v6, proto, src, dst, sport, dport, pkts = convs[c]
+        d, seq, flags, data = pkts[pos[c]]
+        pos[c] += 1
+        a, b, pa, pb = (src, dst, sport, dport) if d == 0 else (dst, src, dport, sport)
+        jump = rng.random()
+        t += 2.5 if jump < 0.01 else -1.0 if jump < 0.02 else rng.choice([0.0, 0.001, 0.01])
+        frame = raw_frame(v6, proto, a, b, pa, pb, seq, flags, data, vlan=rng.random() < 0.1)
+        recs.append((int(t), int((t % 1) * 1e6), frame))
+    return recs
+
+
+def test_lane_equals_the_python_tracker_on_random_conversations(tmp_path, monkeypatch):
+    table = seamscan.compile(LANE_SIGS)
+    rng = random.Random(20261201)
+    limits = [{}, {"tcp_idle": 2, "udp_idle": 1}, {"max_flows": 3}, {"keep_bytes": 3},
+              {"keep_bytes": 0, "hold_bytes": 4, "hold_total": 9}, {"max_flows": 1, "tcp_idle": 1}]
+    for trial in range(120):
+        recs = lane_capture(rng, rng.randrange(1, 12))
+        path = write(tmp_path, pcap_bytes(recs), f"lane{trial}.pcap")
+        options = limits[trial % len(limits)]
+        py, c = replay_both(path, table, monkeypatch, **options)
+        assert c == py, (trial, options)
+
+
+def test_lane_fills_batches_and_keeps_long_streams(tmp_path, monkeypatch):
+    # more items and bytes than one batch holds (the lane stops with its
+    # batch full), and tails trimmed again and again
+    table = seamscan.compile(LANE_SIGS)
+    rng = random.Random(5)
+    src, dst = bytes([192, 0, 2, 10]), bytes([198, 51, 100, 21])
+    recs = [(1, 0, raw_frame(False, 6, src, dst, 40000, 80, 99, 0x02, b""))]
+    seq = 100
+    for i in range(3000):
+        data = bytes(rng.choice(b"abc") for _ in range(rng.choice([1, 7, 700, 1400])))
+        recs.append((2 + i // 1000, i % 1000, raw_frame(False, 6, src, dst, 40000, 80, seq, 0x18,
+                                                         data)))
+        seq += len(data)
+        if i % 400 == 7:  # a retransmission of older bytes: compared with the tail
+            recs.append((2 + i // 1000, i % 1000, raw_frame(False, 6, src, dst, 40000, 80,
+                                                             seq - 3, 0x18, b"zzz")))
+    for keep in (4096, 5):
+        py, c = replay_both(write(tmp_path, pcap_bytes(recs)), table, monkeypatch,
+                            keep_bytes=keep)
+        assert c == py
+        assert py[1]["overlap_conflicts"] > 0

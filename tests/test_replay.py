@@ -79,9 +79,17 @@ def write(tmp_path, packets, name="lab.pcap", **kw):
 
 
 def replay(path, table, **options):
+    """The replay's result; every replay here also runs with the C front end
+    and fast lane off (SEAMSCAN_FASTPATH=0, the pure-Python reference) and
+    must give the same records and counters."""
     result = replay_file(path, table, ReplayOptions(**options))
     assert result.error is None, result.error
     assert result.records[-1]["type"] == "flow"
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("SEAMSCAN_FASTPATH", "0")
+        python = replay_file(path, table, ReplayOptions(**options))
+    assert python.records == result.records
+    assert python.counters == result.counters
     return result
 
 

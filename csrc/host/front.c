@@ -14,25 +14,24 @@
 
 #include "front.h"
 
-static uint32_t rd32(const uint8_t *p, int big)
+uint32_t sf__rd32(const uint8_t *p, int big)
 {
     return big ? ((uint32_t)p[0] << 24 | (uint32_t)p[1] << 16 | (uint32_t)p[2] << 8 | p[3])
                : ((uint32_t)p[3] << 24 | (uint32_t)p[2] << 16 | (uint32_t)p[1] << 8 | p[0]);
 }
 
-static uint32_t be32(const uint8_t *p) { return rd32(p, 1); }
+static uint32_t be32(const uint8_t *p) { return sf__rd32(p, 1); }
 static uint16_t be16(const uint8_t *p) { return (uint16_t)(p[0] << 8 | p[1]); }
 
 static void put8(uint8_t *r, size_t at, uint8_t v) { r[at] = v; }
 static void put16(uint8_t *r, size_t at, uint16_t v) { memcpy(r + at, &v, 2); }
 static void put32(uint8_t *r, size_t at, uint32_t v) { memcpy(r + at, &v, 4); }
 
-/* Fill the decoded fields of record r for frame f (n bytes at offset fo of
- * the buffer) when the decoder's fast path takes it; 0 if it does not. */
-static int fast_decode(const uint8_t *f, size_t n, uint32_t fo, uint8_t *r)
+/* Decode frame f (n bytes) when the decoder's fast path takes it: fill *k
+ * (offsets relative to f) and return 1; 0 if it does not. */
+int sf__decode(const uint8_t *f, size_t n, sf_pkt *k)
 {
-    uint32_t et, ps, pe, so, doff, ulen;
-    uint8_t proto, alen;
+    uint32_t et, doff, ulen;
     const uint8_t *l4;
     if (n < 48)
         return 0;
@@ -41,22 +40,22 @@ static int fast_decode(const uint8_t *f, size_t n, uint32_t fo, uint8_t *r)
         uint32_t total = be16(f + 16);
         if (f[14] != 0x45 || (be16(f + 20) & 0x3FFF) || 14 + total > n)
             return 0;
-        proto = f[23];
-        so = 26;
-        alen = 4;
+        k->proto = f[23];
+        k->so = 26;
+        k->alen = 4;
         l4 = f + 34;
-        if (proto == 6) {
+        if (k->proto == 6) {
             doff = (uint32_t)(l4[12] >> 4) << 2;
             if (doff < 20 || 20 + doff > total)
                 return 0;
-            ps = 34 + doff;
-            pe = 14 + total;
-        } else if (proto == 17) {
+            k->ps = 34 + doff;
+            k->pe = 14 + total;
+        } else if (k->proto == 17) {
             ulen = be16(l4 + 4);
             if (ulen < 8 || ulen + 20 > total)
                 return 0;
-            ps = 42;
-            pe = 34 + ulen;
+            k->ps = 42;
+            k->pe = 34 + ulen;
         } else {
             return 0;
         }
@@ -64,42 +63,55 @@ static int fast_decode(const uint8_t *f, size_t n, uint32_t fo, uint8_t *r)
         uint32_t plen = be16(f + 18);
         if (f[14] >> 4 != 6 || 54 + plen > n)
             return 0;
-        proto = f[20];
-        so = 22;
-        alen = 16;
+        k->proto = f[20];
+        k->so = 22;
+        k->alen = 16;
         l4 = f + 54;
-        if (proto == 6) {
+        if (k->proto == 6) {
             doff = (uint32_t)(l4[12] >> 4) << 2;
             if (doff < 20 || doff > plen)
                 return 0;
-            ps = 54 + doff;
-            pe = 54 + plen;
-        } else if (proto == 17) {
+            k->ps = 54 + doff;
+            k->pe = 54 + plen;
+        } else if (k->proto == 17) {
             ulen = be16(l4 + 4);
             if (ulen < 8 || ulen > plen)
                 return 0;
-            ps = 62;
-            pe = 54 + ulen;
+            k->ps = 62;
+            k->pe = 54 + ulen;
         } else {
             return 0;
         }
     } else {
         return 0;
     }
-    put8(r, 0, 0);
-    put8(r, 1, proto);
-    put8(r, 3, alen);
-    put16(r, 4, be16(l4));
-    put16(r, 6, be16(l4 + 2));
-    if (proto == 6) {
-        put8(r, 2, l4[13]);
-        put32(r, 8, be32(l4 + 4));
-        put32(r, 12, be32(l4 + 8));
+    k->sport = be16(l4);
+    k->dport = be16(l4 + 2);
+    if (k->proto == 6) {
+        k->flags = l4[13];
+        k->seq = be32(l4 + 4);
+        k->ack = be32(l4 + 8);
+    } else {
+        k->flags = 0;
+        k->seq = k->ack = 0;
     }
-    put32(r, 16, fo + so);
-    put32(r, 20, fo + ps);
-    put32(r, 24, fo + pe);
     return 1;
+}
+
+/* Record r for a frame the fast path took, at buffer offset fo. */
+static void put_decoded(uint8_t *r, const sf_pkt *k, uint32_t fo)
+{
+    put8(r, 0, 0);
+    put8(r, 1, k->proto);
+    put8(r, 2, k->flags);
+    put8(r, 3, k->alen);
+    put16(r, 4, k->sport);
+    put16(r, 6, k->dport);
+    put32(r, 8, k->seq);
+    put32(r, 12, k->ack);
+    put32(r, 16, fo + k->so);
+    put32(r, 20, fo + k->ps);
+    put32(r, 24, fo + k->pe);
 }
 
 size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint32_t units,
@@ -111,13 +123,15 @@ size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint
         pos = len;
     while (n < cap && len - pos >= 16) {
         const uint8_t *h = buf + pos;
-        uint32_t sec = rd32(h, big), frac = rd32(h + 4, big), caplen = rd32(h + 8, big);
+        uint32_t sec = sf__rd32(h, big), frac = sf__rd32(h + 4, big), caplen = sf__rd32(h + 8, big);
         uint8_t *r = out + n * SF_REC_SIZE;
         uint64_t whole;
         if (caplen > limit || caplen > len - pos - 16)
             break;
+        sf_pkt k;
         memset(r, 0, SF_REC_SIZE);
-        if (ethernet && fast_decode(h + 16, caplen, (uint32_t)(pos + 16), r)) {
+        if (ethernet && sf__decode(h + 16, caplen, &k)) {
+            put_decoded(r, &k, (uint32_t)(pos + 16));
             nfast++;
         } else {
             put8(r, 0, 1);

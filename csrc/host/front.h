@@ -1,5 +1,6 @@
 /* Host-only replay front end: classic pcap framing and fast decode
- * (see front.c and src/seamscan/fastpath.py for the record layout). */
+ * (front.c), and the fast lane for in-order packets of known flows
+ * (lane.c).  See src/seamscan/fastpath.py for the contracts. */
 #ifndef SEAM_HOST_FRONT_H
 #define SEAM_HOST_FRONT_H
 #include <stddef.h>
@@ -19,4 +20,65 @@
 size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint32_t units,
                        uint32_t limit, int ethernet, uint8_t *out, size_t cap, size_t *end_pos,
                        size_t *fast);
+
+/* A frame the decoder's fast path takes; offsets relative to the frame. */
+typedef struct {
+    uint8_t proto, flags, alen;
+    uint16_t sport, dport;
+    uint32_t seq, ack;
+    uint32_t so, ps, pe; /* source address (destination follows), payload start, end */
+} sf_pkt;
+
+int sf__decode(const uint8_t *f, size_t n, sf_pkt *k);
+uint32_t sf__rd32(const uint8_t *p, int big);
+
+/* ---- the fast lane (lane.c) ------------------------------------------ */
+
+#define SF_KEY_SIZE 40u   /* proto, address length, sport, dport (big-endian), 0, 0, src, dst */
+#define SF_META_SIZE 24u  /* per batch item: u64 frame, f64 ts, u32 slot, u32 0 */
+#define SF_TOUCH_SIZE 16u /* per touched flow: u32 flow slot, u32 0, f64 last ts */
+#define SF_RUN_MAX 4096u  /* records handled per sf_lane_run call, at most */
+
+#define SF_RUN_STOP 0  /* the record at pos is not the lane's: Python takes it */
+#define SF_RUN_FULL 1  /* the batch (items or data) is full: flush, then call again */
+#define SF_RUN_CHUNK 2 /* SF_RUN_MAX records handled: call again */
+
+typedef struct sf_lane sf_lane;
+
+/* What one side lent to the lane holds (in and out of sf_lane_lend /
+ * sf_lane_reclaim).  sink_next: where the scanner's state of that slot
+ * stands, UINT64_MAX when the next item must reset it. */
+typedef struct {
+    uint64_t next, sink_next, packets, bytes;
+    uint32_t expect, tail_len;
+    uint8_t proto, side_code, transport, pad;
+    uint16_t port, pad2;
+    uint32_t cflags;
+} sf_side_state;
+
+/* One call's inputs and outputs.  items/meta/data are the sink's batch
+ * (ss_item records, SF_META_SIZE records, payload bytes); nitems, ndata and
+ * frame are carried in and out; touched gets, in order of their last
+ * packet, each flow slot the call touched and its last timestamp. */
+typedef struct {
+    const uint8_t *buf;
+    uint64_t len, pos;
+    int32_t big, ethernet;
+    uint32_t units, limit;
+    double sweep_at;
+    uint8_t *items, *meta, *data, *touched;
+    uint32_t item_cap, nitems, ntouched, fast;
+    uint64_t data_cap, ndata, frame;
+} sf_run;
+
+sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep);
+void sf_lane_free(sf_lane *lane);
+/* Lend side `sid` (= 2 * flow slot + side) under its sender's key, with its
+ * state and the last tail_len delivered bytes; -1 if out of memory. */
+int sf_lane_lend(sf_lane *lane, uint32_t sid, const uint8_t *key, const sf_side_state *st,
+                 const uint8_t *tail);
+/* Take side `sid` back: its state into *st, its tail into tail (at least
+ * 2 * keep bytes); the key is forgotten. */
+void sf_lane_reclaim(sf_lane *lane, uint32_t sid, sf_side_state *st, uint8_t *tail);
+int sf_lane_run(sf_lane *lane, sf_run *run);
 #endif

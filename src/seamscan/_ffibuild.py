@@ -1,7 +1,8 @@
 """cffi build script (out-of-line API mode): compiles csrc/ into seamscan._seamcore.
 
-The host extension also holds ``csrc/host/front.c``, the replay's host-only
-record framing and fast decode (not part of the device runtime).
+The host extension also holds ``csrc/host/``: the replay's host-only record
+framing and fast decode (``front.c``) and its fast lane for in-order
+packets of known flows (``lane.c``); neither is part of the device runtime.
 
 Run by the package build (``pip install .`` / ``pip install -e .``) through
 ``cffi_modules``; the C sources are the same files a device compiles.
@@ -44,6 +45,37 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
 size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint32_t units,
                        uint32_t limit, int ethernet, uint8_t *out, size_t cap, size_t *end_pos,
                        size_t *fast);
+typedef struct sf_lane sf_lane;
+typedef struct {
+    uint64_t next, sink_next, packets, bytes;
+    uint32_t expect, tail_len;
+    uint8_t proto, side_code, transport, pad;
+    uint16_t port, pad2;
+    uint32_t cflags;
+} sf_side_state;
+typedef struct {
+    const uint8_t *buf;
+    uint64_t len, pos;
+    int32_t big, ethernet;
+    uint32_t units, limit;
+    double sweep_at;
+    uint8_t *items, *meta, *data, *touched;
+    uint32_t item_cap, nitems, ntouched, fast;
+    uint64_t data_cap, ndata, frame;
+} sf_run;
+#define SF_KEY_SIZE ...
+#define SF_META_SIZE ...
+#define SF_TOUCH_SIZE ...
+#define SF_RUN_MAX ...
+#define SF_RUN_STOP ...
+#define SF_RUN_FULL ...
+#define SF_RUN_CHUNK ...
+sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep);
+void sf_lane_free(sf_lane *lane);
+int sf_lane_lend(sf_lane *lane, uint32_t sid, const uint8_t *key, const sf_side_state *st,
+                 const uint8_t *tail);
+void sf_lane_reclaim(sf_lane *lane, uint32_t sid, sf_side_state *st, uint8_t *tail);
+int sf_lane_run(sf_lane *lane, sf_run *run);
 """
 
 def _host_flags() -> list[str]:
@@ -66,7 +98,7 @@ ffibuilder.set_source(
     '#include "seam.h"\n#include "host/front.h"',
     # the device runtime, then the host-only replay front end (csrc/host/)
     sources=[str(p.relative_to(ROOT)) for p in sorted(CSRC.glob("seam_*.c"))]
-    + [str((CSRC / "host" / "front.c").relative_to(ROOT))],
+    + [str((CSRC / "host" / name).relative_to(ROOT)) for name in ("front.c", "lane.c")],
     include_dirs=[str(CSRC.relative_to(ROOT))],
     extra_compile_args=["-O3", "-std=c99", *_host_flags()],
 )

@@ -306,8 +306,13 @@ class BatchScanner:
 
     def scan_packed(self, packed: bytearray, n: int, data: bytes) -> list[tuple[int, int, int, int]]:
         """The same with items already packed as ``ss_item`` records over ``data``."""
-        items = ffi.from_buffer("ss_item[]", packed)
-        buf = ffi.from_buffer(data or b"\0")
+        return self.scan_items(ffi.from_buffer("ss_item[]", packed), n,
+                               ffi.from_buffer(data or b"\0"))
+
+    def scan_items(self, items, n: int, buf) -> list[tuple[int, int, int, int]]:
+        """The same with the ``ss_item`` records and the data in C memory
+        (cdata pointers or arrays): ``n`` items over ``buf``."""
+        items = ffi.cast("ss_item *", items)
         t = self.table
         found: list[tuple[int, int, int, int]] = []
         start = 0

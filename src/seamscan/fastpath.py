@@ -52,9 +52,11 @@ class _Reader(CaptureReader):
         return iter(())
 
 
-def feed(path, decoder, packet, progress) -> str | None:
+def feed(path, decoder, packet, progress, lane=None) -> str | None:
     """Decode every record of ``path`` and hand each packet to ``packet``, as
-    ``replay._feed`` with ``decoder.decode``; the capture's damage or None."""
+    ``replay._feed`` with ``decoder.decode``; the capture's damage or None.
+    With ``lane`` (a :class:`Lane` whose tracker's ``packet`` this is), the
+    in-order packets of lent flow sides go from the buffer to the sink in C."""
     reader = None
     try:
         reader = _Reader(path)
@@ -63,7 +65,7 @@ def feed(path, decoder, packet, progress) -> str | None:
 
             decode_records(reader, decoder.decode, packet, progress)
             return None
-        _pcap(reader, reader.head, decoder, packet, progress)
+        _pcap(reader, reader.head, decoder, packet, progress, lane)
     except CaptureError as err:
         return str(err)
     finally:
@@ -74,10 +76,11 @@ def feed(path, decoder, packet, progress) -> str | None:
     return None
 
 
-def _pcap(reader, buf, decoder, packet, progress) -> None:
+def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
     """The records of a classic pcap file whose buffer ``buf`` starts with
     its header: ``CaptureReader._pcap_records`` with the complete records
-    of each buffer framed (and mostly decoded) in C."""
+    of each buffer framed (and mostly decoded) in C, and with a lane, the
+    lane's packets delivered in C."""
     linktype, units, limit, unpack = pcap_header(buf)
     big = int(_PCAP_MAGICS[buf[:4]][0] == ">")
     ethernet = int(linktype == 1)
@@ -93,9 +96,29 @@ def _pcap(reader, buf, decoder, packet, progress) -> None:
     base = 0  # stream offset of buf[0]
     pos = 24
     frame = 0
+    reported = 0  # frame at the last progress report
+    # Records framed per call for Python to take: all there are without a
+    # lane; with one, one after each lane stop, doubling while the lane
+    # takes nothing (a capture the lane cannot help with), back to one when
+    # it does.  Only speed depends on it: Python takes any record correctly.
+    take = _REC_CAP
+    relend = None
+    if lane is not None:
+        lane.start(counts, big, units, limit, ethernet)
+        relend = lane.relend
+        take = 1
     while True:
+        if lane is not None:
+            pos, frame, rc, handled = lane.run(buf, pos, frame)
+            if rc != _RUN_STOP:
+                take = 1
+                if progress is not None and frame - reported >= 4096:
+                    reported = frame
+                    progress(reader.position())
+                continue
+            take = 1 if handled else min(2 * take, _REC_CAP)
         n = records(ffi.from_buffer(buf), len(buf), pos, big, units, limit, ethernet, c_out,
-                    _REC_CAP, end_pos, nfast)
+                    take, end_pos, nfast)
         if n:
             fast = nfast[0]
             counts["frames"] += fast
@@ -109,14 +132,20 @@ def _pcap(reader, buf, decoder, packet, progress) -> None:
                     pkt = decode(frame, ts, linktype, buf[ps:pe])
                     if pkt is not None:
                         packet(pkt)
+                        if relend is not None:
+                            relend(pkt)
                 else:
                     da = so + alen
-                    packet(_new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                         ack, flags, buf[ps:pe], frame, ts)))
+                    pkt = _new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
+                                        ack, flags, buf[ps:pe], frame, ts))
+                    packet(pkt)
+                    if relend is not None:
+                        relend(pkt)
             pos = end_pos[0]
-            if progress is not None:
+            if progress is not None and frame - reported >= 4096:
+                reported = frame
                 progress(reader.position())
-            if n == _REC_CAP:
+            if n == take:
                 continue
         # The next record is not wholly in the buffer, or is too long: the
         # reader's own step, for this one record.
@@ -128,3 +157,175 @@ def _pcap(reader, buf, decoder, packet, progress) -> None:
         pkt = decode(frame, (sec * units + frac) / units, linktype, data)
         if pkt is not None:
             packet(pkt)
+            if relend is not None:
+                relend(pkt)
+
+
+_RUN_STOP, _RUN_FULL = lib.SF_RUN_STOP, lib.SF_RUN_FULL
+_TOUCH = struct.Struct("=I4xd")
+_NO_RESET = (1 << 64) - 1  # sf_side_state.sink_next: the next item resets the slot
+
+
+class Lane:
+    """The replay's fast lane (``csrc/host/lane.c``) for one tracker and sink.
+
+    The tracker decides; the lane only repeats its fast path.  After each
+    packet the tracker handles, ``relend`` lends that packet's flow's sides
+    that qualify (TCP: ``expect`` set, i.e. started, nothing held, no FIN;
+    UDP: any), each under its sender's key when the tracker's own lookup
+    gives that side for the key; the tracker calls ``reclaim`` (its
+    ``reclaim`` hook) before it touches a lent flow again.  ``run`` lets C
+    handle records up to the next one it cannot (a new or unlent flow, a
+    SYN, FIN or RST, an out-of-order segment, a frame the C decode does not
+    take, a due idle sweep, an inexact timestamp), then brings every touched
+    flow's last timestamp and idle order up to date.
+    """
+
+    def __init__(self, tracker, sink):
+        self.tracker = tracker
+        self.sink = sink
+        self.keep = tracker.keep_bytes
+        c = lib.sf_lane_new(tracker.max_flows, self.keep)
+        if c == ffi.NULL:
+            raise MemoryError("seamscan: cannot allocate the replay's flow table")
+        self.c = ffi.gc(c, lib.sf_lane_free)
+        self.flows = {}  # flow slot -> lent flow
+        self.lent = bytearray(2 * tracker.max_flows)  # per side slot: lent?
+        self.st = ffi.new("sf_side_state *")
+        self.tail = ffi.new("uint8_t[]", 2 * self.keep + 1)
+        self._tail = ffi.buffer(self.tail)
+        self.touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * lib.SF_RUN_MAX)
+        self._touched = ffi.buffer(self.touched)
+        self.r = ffi.new("sf_run *")
+        self._buf = self._buf_c = None
+        self._keys = {}  # side slot -> (side, its key or None), for the side last seen there
+        tracker.reclaim = self.reclaim
+
+    def start(self, counts, big, units, limit, ethernet):
+        """Set the capture's constants for ``run``."""
+        r = self.r
+        r.big, r.units, r.limit, r.ethernet = big, units, limit, ethernet
+        r.touched = self.touched
+        self.counts = counts
+        self._data = None
+
+    def run(self, buf, pos, frame):
+        """C takes the records from ``pos`` on; (pos, frame, stop reason,
+        records it took)."""
+        r, sink = self.r, self.sink
+        if buf is not self._buf:
+            self._buf, self._buf_c = buf, ffi.from_buffer(buf)
+            r.buf = self._buf_c
+            r.len = len(buf)
+        if sink.c_data is not self._data:  # the sink's batch memory (new if it grew)
+            self._data = sink.c_data
+            r.items, r.meta, r.data = sink.c_items, sink.c_meta, sink.c_data
+            r.item_cap, r.data_cap = sink.item_cap, sink.data_cap
+        r.pos = pos
+        r.frame = frame
+        r.sweep_at = self.tracker._sweep_at
+        r.nitems = sink.n
+        r.ndata = sink.nbytes
+        rc = lib.sf_lane_run(self.c, r)
+        handled = r.fast
+        if handled:
+            sink.n = r.nitems
+            sink.nbytes = r.ndata
+            r.fast = 0
+            counts = self.counts
+            counts["frames"] += handled
+            counts["decoded"] += handled
+            flows = self.flows
+            tracker = self.tracker
+            tcp_touch, udp_touch = tracker._tcp_touch, tracker._udp_touch
+            for fslot, ts in _TOUCH.iter_unpack(self._touched[:r.ntouched * _TOUCH.size]):
+                flow = flows[fslot]
+                flow.last_ts = ts
+                if flow.proto == 6:
+                    tcp_touch(flow)
+                else:
+                    udp_touch(flow)
+        if rc == _RUN_FULL:
+            sink.flush()
+        return r.pos, r.frame, rc, handled
+
+    def relend(self, pkt):
+        """Lend the qualifying sides of ``pkt``'s flow, once the tracker has
+        handled ``pkt``."""
+        s = self.tracker._sides.get((pkt.src, pkt.sport, pkt.dst, pkt.dport, pkt.proto))
+        if s is None:
+            return
+        flow = s.flow
+        if flow.end_reason is not None:
+            return
+        lent = self.lent
+        tcp = flow.proto == 6
+        base = 2 * flow.slot
+        for s in flow._sides:
+            sid = base + s.side
+            if lent[sid] or (tcp and s.expect == -1):
+                continue
+            key = self._key(flow, s, sid)
+            if key is None:
+                continue
+            sink = self.sink
+            c = sink.ctx.get(flow)
+            if c is None:
+                c = sink._begin(flow)
+            st = self.st
+            _slot, st.side_code, st.transport, st.port, st.cflags, _t = c[s.side]
+            st.proto = flow.proto
+            st.next = s.next
+            nxt = sink.next_offset[sid]
+            st.sink_next = nxt if nxt >= 0 else _NO_RESET
+            if tcp:
+                tail = s.recent[0] if len(s.recent) == 1 else b"".join(s.recent)
+                st.expect = s.expect
+            else:
+                tail = b""
+            st.tail_len = len(tail)
+            if lib.sf_lane_lend(self.c, sid, key, st, tail) != 0:
+                continue  # not lent: the tracker keeps the side (only speed differs)
+            lent[sid] = 1
+            flow.lent = True
+            self.flows[flow.slot] = flow
+
+    def _key(self, flow, s, sid):
+        """Side ``s``'s sender key (``SF_KEY_SIZE`` bytes), or None when the
+        tracker's lookup of that key gives the other side (a flow from an
+        endpoint to itself)."""
+        hit = self._keys.get(sid)
+        if hit is not None and hit[0] is s:
+            return hit[1]
+        (src, sport), (dst, dport) = ((flow.client, flow.server) if s.side == 0
+                                      else (flow.server, flow.client))
+        key = None
+        if self.tracker._sides.get((src, sport, dst, dport, flow.proto)) is s:
+            key = (bytes((flow.proto, len(src))) + sport.to_bytes(2, "big")
+                   + dport.to_bytes(2, "big") + b"\0\0" + src.ljust(16, b"\0")
+                   + dst.ljust(16, b"\0"))
+        self._keys[sid] = (s, key)
+        return key
+
+    def reclaim(self, flow):
+        """Take a flow's lent sides back into the tracker (its ``reclaim`` hook)."""
+        st = self.st
+        lent = self.lent
+        for s in flow._sides:
+            sid = 2 * flow.slot + s.side
+            if not lent[sid]:
+                continue
+            lib.sf_lane_reclaim(self.c, sid, st, self.tail)
+            lent[sid] = 0
+            s.next = st.next
+            if flow.proto == 6:
+                s.expect = st.expect
+                n = st.tail_len
+                s.recent = [self._tail[:n]] if n else []
+                s.recent_len = n
+            flow.packets[s.side] += st.packets
+            flow.bytes[s.side] += st.bytes
+            nxt = st.sink_next
+            self.sink.next_offset[sid] = -1 if nxt == _NO_RESET else nxt
+        flow.lent = False
+        del self.flows[flow.slot]

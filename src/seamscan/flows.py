@@ -144,6 +144,7 @@ class Flow:
     packets / bytes: per side [client, server]; bytes = payload bytes delivered.
     gaps / overlaps: gap and overlap events of this flow.
     end_reason: None while live, then "fin" | "rst" | "idle" | "evicted" | "capture_end".
+    lent: some of its sides are held by a fast lane (see FlowTracker.reclaim).
     The reassembly state goes once the flow has ended; the fields above stay.
     """
 
@@ -161,6 +162,7 @@ class Flow:
         "overlaps",
         "matches",
         "end_reason",
+        "lent",
         "_sides",
         "_held",
     )
@@ -179,6 +181,7 @@ class Flow:
         self.overlaps = 0
         self.matches = 0
         self.end_reason = None
+        self.lent = False  # sides lent to a fast lane (FlowTracker.reclaim)
         self._sides = (_Side(self, CLIENT), _Side(self, SERVER))
         self._held = 0  # out-of-order bytes held, both sides
 
@@ -292,6 +295,14 @@ class FlowTracker:
         self._held_total = 0
         self._tail_cap = 2 * keep_bytes
         self._sweep_at = float("-inf")
+        # A fast lane (seamscan.fastpath) may hold some sides' reassembly
+        # state (next, expect, the delivered tail) and counts (packets,
+        # bytes) while it delivers their in-order packets; such a flow has
+        # `lent` set, and the tracker calls reclaim(flow) to take them back
+        # before it reads or changes the flow.  Last timestamps and the idle
+        # order are brought up to date by the lane before each packet the
+        # tracker sees.
+        self.reclaim = None
 
     # -- packets ----------------------------------------------------------
 
@@ -306,6 +317,8 @@ class FlowTracker:
             if s is None:
                 return
         flow = s.flow
+        if flow.lent:
+            self.reclaim(flow)
         flow.last_ts = ts
         side = s.side
         flow.packets[side] += 1
@@ -447,6 +460,8 @@ class FlowTracker:
 
     def _end_flow(self, flow, reason):
         """Give up open holes, deliver what is held, emit end, free the slot."""
+        if flow.lent:
+            self.reclaim(flow)
         for s in flow._sides:
             self._flush(s)
         flow.end_reason = reason

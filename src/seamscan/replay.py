@@ -15,12 +15,14 @@ from __future__ import annotations
 import gc
 import math
 import os
+import struct
 import time
 from collections import Counter
 from dataclasses import dataclass, field
 from operator import itemgetter
 
 from seamscan import engine
+from seamscan._seamcore import ffi
 from seamscan.capture import CaptureError, open_capture
 from seamscan.decode import Decoder, format_ip
 from seamscan.flows import CLIENT, FlowTracker
@@ -33,6 +35,13 @@ _PACK = _ITEM.pack_into
 _RESET = engine.ITEM_RESET
 _BATCH_ITEMS = 1024
 _BATCH_BYTES = 1 << 20
+# Room past _BATCH_BYTES: a batch is scanned once it holds _BATCH_BYTES, so
+# the last payload added (an IP datagram: 64 KiB at most) always fits.
+_DATA_CAP = _BATCH_BYTES + (1 << 18)
+META = struct.Struct("=QdI4x")  # per batch item: frame, ts, slot (SF_META_SIZE)
+_META_SIZE = META.size
+_META_PACK = META.pack_into
+_META_UNPACK = META.unpack_from
 
 
 @dataclass(slots=True)
@@ -44,6 +53,7 @@ class ReplayOptions:
     max_flows: int = 65536
     tcp_idle: float = 300.0
     udp_idle: float = 60.0
+    keep_bytes: int = 4096  # delivered bytes kept per side to check overlaps against
 
 
 @dataclass(slots=True)
@@ -73,6 +83,13 @@ class ScanSink:
     across packet boundaries.  UDP datagrams carry the datagram flag, so
     datagram-scoped signatures only match inside one datagram while
     stream-scoped ones span datagrams.
+
+    The batch lives in C memory: ``c_items`` (``ss_item`` records),
+    ``c_meta`` (per item the frame, timestamp and slot: ``META``) and
+    ``c_data`` (the payload bytes); ``n`` and ``nbytes`` say how much of
+    them is filled.
+    The replay's fast lane (``seamscan.fastpath``) appends to the same
+    batch from C.
     """
 
     def __init__(self, table: engine.Table, slots: int, path: str, emit):
@@ -83,46 +100,64 @@ class ScanSink:
         self.emit = emit  # called with each record dict, in order
         self.next_offset = [-1] * slots  # where each slot's state stands; -1: reset needed
         self.ctx = {}  # live flow -> (client side, server side, flow fields); see _begin
+        self.by_slot = {}  # flow slot -> the flow that holds it (set by _begin)
+        self._retired = {}  # flow slot -> [(items before its end, flow)] ended this batch
         self.matches = 0
         self.bytes = 0
-        self._packed = bytearray(_ITEM_SIZE * _BATCH_ITEMS)
-        self._chunks: list[bytes] = []
-        self._meta: list[tuple] = []  # per item: (flow, frame, ts, match record template)
+        self.item_cap = _BATCH_ITEMS
+        self.c_items = ffi.new("uint8_t[]", _ITEM_SIZE * _BATCH_ITEMS)
+        self.c_meta = ffi.new("uint8_t[]", META.size * _BATCH_ITEMS)
+        self._items = ffi.buffer(self.c_items)
+        self._meta = ffi.buffer(self.c_meta)
+        self._grow(_DATA_CAP)
+        self.n = 0
+        self.nbytes = 0
         self._events: list[tuple] = []  # (item position, record or flow to end)
-        self._nbytes = 0
+
+    def _grow(self, size):
+        self.data_cap = size
+        self.c_data = ffi.new("uint8_t[]", size)
+        self._data = ffi.buffer(self.c_data)
 
     # -- the tracker's sink interface ------------------------------------
     def data(self, flow, side, offset, payload, frame, ts, datagram):
         c = self.ctx.get(flow)
         if c is None:
             c = self._begin(flow)
-        slot, sc, tr, port, cflags, template = c[side]
+        slot, sc, tr, port, cflags, _template = c[side]
         size = len(payload)
+        nbytes = self.nbytes
+        if nbytes + size > self.data_cap or self.n >= _BATCH_ITEMS:  # filled by the fast lane
+            self.flush()
+            nbytes = 0
+            if size > self.data_cap:
+                self._grow(size)
         next_offset = self.next_offset
         flags = 0 if next_offset[slot] == offset else _RESET
         next_offset[slot] = offset + size
-        meta = self._meta
-        n = len(meta)
-        nbytes = self._nbytes
-        _PACK(self._packed, n * _ITEM_SIZE, slot, flags, sc, tr, port, cflags, size, 0, nbytes,
+        n = self.n
+        _PACK(self._items, n * _ITEM_SIZE, slot, flags, sc, tr, port, cflags, size, 0, nbytes,
               offset)
-        self._chunks.append(payload)
-        meta.append((flow, frame, ts, template))
-        self._nbytes = nbytes = nbytes + size
-        if n + 1 >= _BATCH_ITEMS or nbytes >= _BATCH_BYTES:
+        _META_PACK(self._meta, n * _META_SIZE, frame, ts, slot)
+        self._data[nbytes:nbytes + size] = payload
+        self.n = n = n + 1
+        self.nbytes = nbytes = nbytes + size
+        if n >= _BATCH_ITEMS or nbytes >= _BATCH_BYTES:
             self.flush()
 
     def gap(self, flow, side, offset, length, frame, ts):
         self.next_offset[2 * flow.slot + side] = -1
-        self._events.append((len(self._meta), self._range_record("gap", flow, side, offset,
-                                                                 length, frame, ts)))
+        self._events.append((self.n, self._range_record("gap", flow, side, offset, length,
+                                                        frame, ts)))
 
     def overlap(self, flow, side, offset, length, frame, ts):
-        self._events.append((len(self._meta), self._range_record("overlap", flow, side, offset,
-                                                                 length, frame, ts)))
+        self._events.append((self.n, self._range_record("overlap", flow, side, offset, length,
+                                                        frame, ts)))
 
     def end(self, flow):
-        self._events.append((len(self._meta), flow))
+        self._fields(flow)
+        self._events.append((self.n, flow))
+        self._retired.setdefault(flow.slot, []).append((self.n, flow))
         self.next_offset[2 * flow.slot] = self.next_offset[2 * flow.slot + 1] = -1
 
     # -- batching ----------------------------------------------------------
@@ -142,6 +177,7 @@ class ScanSink:
                     "start": 0, "end": 0, "file": self.path, "frame": 0, "ts": 0.0})
                   for side in (0, 1)) + (fields,)
         self.ctx[flow] = c
+        self.by_slot[flow.slot] = flow
         return c
 
     def _range_record(self, kind, flow, side, offset, length, frame, ts):
@@ -154,15 +190,24 @@ class ScanSink:
             c = self._begin(flow)
         return c[2]
 
+    def _owner(self, fslot, item):
+        """The flow that held flow slot ``fslot`` when item ``item`` was added."""
+        for stop, flow in self._retired.get(fslot, ()):
+            if item < stop:
+                return flow
+        return self.by_slot[fslot]
+
     def flush(self):
         """Scan what is pending and emit the records, in delivery order."""
-        n = len(self._meta)
+        n = self.n
         found = []
         if n:
-            found = self.scanner.scan_packed(self._packed, n, b"".join(self._chunks))
+            found = self.scanner.scan_items(self.c_items, n, self.c_data)
             if len(found) > 1:
                 found.sort(key=_item_of)
-        meta, events, emit, ids = self._meta, self._events, self.emit, self.ids
+        events, emit, ids, ctx = self._events, self.emit, self.ids, self.ctx
+        meta = self._meta[:n * _META_SIZE] if found else b""  # bytes: quicker to unpack
+        by_slot, retired = self.by_slot, self._retired
         ei = 0
         due = events[0][0] if events else n  # item position of the next event
         for item, sig, start, end in found:
@@ -170,9 +215,10 @@ class ScanSink:
                 self._event(events[ei][1])
                 ei += 1
                 due = events[ei][0] if ei < len(events) else n
-            flow, frame, ts, template = meta[item]
+            frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
+            flow = self._owner(slot >> 1, item) if retired else by_slot[slot >> 1]
             flow.matches += 1
-            record = template.copy()
+            record = ctx[flow][slot & 1][5].copy()
             record["sig"] = ids[sig]
             record["start"] = start
             record["end"] = end
@@ -182,11 +228,11 @@ class ScanSink:
         for _pos, ev in events[ei:]:
             self._event(ev)
         self.matches += len(found)
-        self.bytes += self._nbytes
-        self._chunks = []
-        self._meta = []
+        self.bytes += self.nbytes
+        self.n = 0
+        self.nbytes = 0
         self._events = []
-        self._nbytes = 0
+        self._retired.clear()
 
     def _event(self, ev):
         if isinstance(ev, dict):
@@ -195,6 +241,8 @@ class ScanSink:
         flow = ev
         self.emit(flow_record(flow, self._fields(flow), self.path))
         self.ctx.pop(flow, None)
+        if self.by_slot.get(flow.slot) is flow:
+            del self.by_slot[flow.slot]
 
 
 _item_of = itemgetter(0)
@@ -228,7 +276,7 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
     sink = ScanSink(table, 2 * options.max_flows, str(path), out)
     tracker = FlowTracker(sink, hold_bytes=options.hold_bytes, hold_total=options.hold_total,
                           max_flows=options.max_flows, tcp_idle=options.tcp_idle,
-                          udp_idle=options.udp_idle)
+                          udp_idle=options.udp_idle, keep_bytes=options.keep_bytes)
     decoder = Decoder()
     # The replay makes no reference cycles (an ended flow drops its own), so
     # the cyclic collector would walk every live object again and again and
@@ -238,7 +286,8 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
     try:
         if fastpath_enabled():
             from seamscan import fastpath
-            result.error = fastpath.feed(path, decoder, tracker.packet, progress)
+            result.error = fastpath.feed(path, decoder, tracker.packet, progress,
+                                         fastpath.Lane(tracker, sink))
         else:
             result.error = _feed(path, decoder.decode, tracker.packet, progress)
         decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out

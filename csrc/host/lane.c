@@ -1,0 +1,287 @@
+/* Host-only fast lane of the replay: in-order packets of known flows, from
+ * the capture buffer straight into the sink's scan batch.
+ *
+ * Python's flow tracker (src/seamscan/flows.py) decides every rule; it
+ * lends a flow side to this lane only when the side's next packets need no
+ * decision (TCP: started, nothing held, no FIN, so an in-order segment or a
+ * bare ACK; UDP: always), and takes it back before it touches the flow
+ * again.  For a lent side the lane does exactly what FlowTracker.packet's
+ * fast path and ScanSink.data would: count the packet, move the stream
+ * offset and the expected sequence number, keep the same delivered tail
+ * (the last `keep` bytes at least, 2 * keep at most, trimmed at the same
+ * moments), and write the batch item, its frame and timestamp and the
+ * payload.  Anything else stops the lane at that record and Python takes it
+ * (see src/seamscan/fastpath.py).  Not part of the device runtime.
+ */
+#include <stdint.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "seam.h"
+#include "front.h"
+
+typedef struct {
+    uint8_t key[SF_KEY_SIZE];
+    sf_side_state st;
+    uint8_t *tail;
+    uint8_t lent;
+} side;
+
+struct sf_lane {
+    uint32_t max_sides, mask, keep;
+    uint32_t *index; /* open addressing, linear probing: sid + 1, 0 empty */
+    side *sides;
+    double *last_ts;    /* per flow slot */
+    uint32_t *last_pos; /* per flow slot: its last entry in the touch log */
+    uint32_t *log;      /* flow slot per packet handled, this call */
+};
+
+static uint32_t hash_key(const uint8_t *k, uint32_t mask)
+{
+    uint64_t h = 0x9E3779B97F4A7C15u, w;
+    unsigned i;
+    for (i = 0; i < SF_KEY_SIZE; i += 8) {
+        memcpy(&w, k + i, 8);
+        h = (h ^ w) * 0xFF51AFD7ED558CCDu;
+        h ^= h >> 32;
+    }
+    return (uint32_t)h & mask;
+}
+
+sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep)
+{
+    sf_lane *L = calloc(1, sizeof *L);
+    uint32_t cap = 16;
+    if (!L || max_flows == 0 || max_flows > (1u << 28))
+        goto fail;
+    L->max_sides = 2u * max_flows;
+    while (cap < 2u * L->max_sides)
+        cap <<= 1;
+    L->mask = cap - 1u;
+    L->keep = keep;
+    L->index = calloc(cap, sizeof *L->index);
+    L->sides = calloc(L->max_sides, sizeof *L->sides);
+    L->last_ts = calloc(max_flows, sizeof *L->last_ts);
+    L->last_pos = calloc(max_flows, sizeof *L->last_pos);
+    L->log = calloc(SF_RUN_MAX, sizeof *L->log);
+    if (L->index && L->sides && L->last_ts && L->last_pos && L->log)
+        return L;
+fail:
+    sf_lane_free(L);
+    return NULL;
+}
+
+void sf_lane_free(sf_lane *L)
+{
+    uint32_t i;
+    if (!L)
+        return;
+    if (L->sides)
+        for (i = 0; i < L->max_sides; i++)
+            free(L->sides[i].tail);
+    free(L->index);
+    free(L->sides);
+    free(L->last_ts);
+    free(L->last_pos);
+    free(L->log);
+    free(L);
+}
+
+static int64_t find(const sf_lane *L, const uint8_t *key)
+{
+    uint32_t h = hash_key(key, L->mask), e;
+    while ((e = L->index[h]) != 0) {
+        if (memcmp(L->sides[e - 1u].key, key, SF_KEY_SIZE) == 0)
+            return (int64_t)e - 1;
+        h = (h + 1u) & L->mask;
+    }
+    return -1;
+}
+
+/* Remove the index entry at h, shifting later entries of its run back. */
+static void unindex(sf_lane *L, uint32_t h)
+{
+    uint32_t j = h, e, home;
+    for (;;) {
+        L->index[h] = 0;
+        for (;;) {
+            j = (j + 1u) & L->mask;
+            e = L->index[j];
+            if (e == 0)
+                return;
+            home = hash_key(L->sides[e - 1u].key, L->mask);
+            /* e may move to h if its home is not cyclically in (h, j] */
+            if (h <= j ? (h < home && home <= j) : (h < home || home <= j))
+                continue;
+            break;
+        }
+        L->index[h] = e;
+        h = j;
+    }
+}
+
+int sf_lane_lend(sf_lane *L, uint32_t sid, const uint8_t *key, const sf_side_state *st,
+                 const uint8_t *tail)
+{
+    side *S;
+    uint32_t h;
+    if (sid >= L->max_sides || st->tail_len > 2u * L->keep)
+        return -1;
+    S = &L->sides[sid];
+    if (S->lent)
+        return -1;
+    if (!S->tail && !(S->tail = malloc(2u * (size_t)L->keep + 1u)))
+        return -1;
+    memcpy(S->key, key, SF_KEY_SIZE);
+    S->st = *st;
+    S->st.packets = S->st.bytes = 0;
+    if (st->tail_len)
+        memcpy(S->tail, tail, st->tail_len);
+    S->lent = 1;
+    h = hash_key(key, L->mask);
+    while (L->index[h] != 0)
+        h = (h + 1u) & L->mask;
+    L->index[h] = sid + 1u;
+    return 0;
+}
+
+void sf_lane_reclaim(sf_lane *L, uint32_t sid, sf_side_state *st, uint8_t *tail)
+{
+    side *S;
+    uint32_t h;
+    if (sid >= L->max_sides || !L->sides[sid].lent)
+        return;
+    S = &L->sides[sid];
+    *st = S->st;
+    if (S->st.tail_len)
+        memcpy(tail, S->tail, S->st.tail_len);
+    h = hash_key(S->key, L->mask);
+    while (L->index[h] != sid + 1u)
+        h = (h + 1u) & L->mask;
+    unindex(L, h);
+    S->lent = 0;
+    free(S->tail);
+    S->tail = NULL;
+}
+
+/* FlowTracker._deliver's tail: append, and when it exceeds 2 * keep keep
+ * only the last keep bytes. */
+static void keep_tail(side *S, const uint8_t *p, uint32_t n, uint32_t keep)
+{
+    uint32_t len = S->st.tail_len;
+    if ((uint64_t)len + n > 2u * (uint64_t)keep) {
+        if (n >= keep) {
+            memcpy(S->tail, p + (n - keep), keep);
+        } else {
+            memmove(S->tail, S->tail + (len - (keep - n)), keep - n);
+            memcpy(S->tail + (keep - n), p, n);
+        }
+        S->st.tail_len = keep;
+    } else {
+        memcpy(S->tail + len, p, n);
+        S->st.tail_len = len + n;
+    }
+}
+
+int sf_lane_run(sf_lane *L, sf_run *r)
+{
+    const uint8_t *buf = r->buf;
+    uint64_t pos = r->pos;
+    uint32_t nlog = 0, i, nt = 0;
+    int rc = SF_RUN_STOP;
+    uint8_t key[SF_KEY_SIZE];
+    for (;;) {
+        const uint8_t *h = buf + pos, *f = h + 16;
+        uint32_t sec, frac, caplen, n;
+        uint64_t whole;
+        double ts;
+        sf_pkt k;
+        int64_t sid;
+        side *S;
+        if (nlog == SF_RUN_MAX) {
+            rc = SF_RUN_CHUNK;
+            break;
+        }
+        if (pos > r->len || r->len - pos < 16)
+            break;
+        sec = sf__rd32(h, r->big);
+        frac = sf__rd32(h + 4, r->big);
+        caplen = sf__rd32(h + 8, r->big);
+        if (caplen > r->limit || caplen > r->len - pos - 16)
+            break;
+        whole = (uint64_t)sec * r->units + frac;
+        if (whole >= ((uint64_t)1 << 53) || !r->ethernet || !sf__decode(f, caplen, &k))
+            break;
+        ts = (double)whole / (double)r->units; /* as sf_pcap_records */
+        if (ts >= r->sweep_at)
+            break; /* the tracker's idle sweep is due */
+        memset(key, 0, sizeof key);
+        key[0] = k.proto;
+        key[1] = k.alen;
+        key[2] = (uint8_t)(k.sport >> 8);
+        key[3] = (uint8_t)k.sport;
+        key[4] = (uint8_t)(k.dport >> 8);
+        key[5] = (uint8_t)k.dport;
+        memcpy(key + 8, f + k.so, k.alen);
+        memcpy(key + 24, f + k.so + k.alen, k.alen);
+        if ((sid = find(L, key)) < 0)
+            break;
+        S = &L->sides[sid];
+        n = k.pe - k.ps;
+        if (k.proto == 6 && ((k.flags & 7u) || (n && k.seq != S->st.expect)))
+            break; /* FIN, SYN, RST or out of order: the tracker's general path */
+        if (n && (r->nitems >= r->item_cap || r->ndata + n > r->data_cap)) {
+            rc = SF_RUN_FULL;
+            break;
+        }
+        r->frame++;
+        L->last_ts[sid >> 1] = ts;
+        L->last_pos[sid >> 1] = nlog;
+        L->log[nlog++] = (uint32_t)(sid >> 1);
+        S->st.packets++;
+        if (n) {
+            ss_item it;
+            uint64_t frame = r->frame;
+            uint32_t slot = (uint32_t)sid, zero = 0;
+            memset(&it, 0, sizeof it);
+            it.slot = slot;
+            it.flags = S->st.sink_next == S->st.next ? 0u : SS_ITEM_RESET;
+            it.ctx.side = S->st.side_code;
+            it.ctx.transport = S->st.transport;
+            it.ctx.server_port = S->st.port;
+            it.ctx.flags = S->st.cflags;
+            it.len = n;
+            it.data_off = r->ndata;
+            it.reset_offset = S->st.next;
+            memcpy(r->items + (size_t)r->nitems * sizeof it, &it, sizeof it);
+            memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE, &frame, 8);
+            memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 8, &ts, 8);
+            memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 16, &slot, 4);
+            memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 20, &zero, 4);
+            memcpy(r->data + r->ndata, f + k.ps, n);
+            r->nitems++;
+            r->ndata += n;
+            S->st.next += n;
+            S->st.sink_next = S->st.next;
+            S->st.bytes += n;
+            if (k.proto == 6) {
+                S->st.expect += n;
+                keep_tail(S, f + k.ps, n, L->keep);
+            }
+        }
+        r->fast++;
+        pos += 16u + caplen;
+    }
+    for (i = 0; i < nlog; i++) {
+        uint32_t fs = L->log[i], zero = 0;
+        if (L->last_pos[fs] != i)
+            continue;
+        memcpy(r->touched + (size_t)nt * SF_TOUCH_SIZE, &fs, 4);
+        memcpy(r->touched + (size_t)nt * SF_TOUCH_SIZE + 4, &zero, 4);
+        memcpy(r->touched + (size_t)nt * SF_TOUCH_SIZE + 8, &L->last_ts[fs], 8);
+        nt++;
+    }
+    r->ntouched = nt;
+    r->pos = pos;
+    return rc;
+}
