@@ -397,6 +397,8 @@ def lane_capture(rng, nflows):
                 pkts.append((rng.randrange(2), (isn[0] + nxt[0]) % 2**32, 0x04, b""))
             # perturb: swap neighbours, repeat, overlap with other bytes, lose
             for _ in range(rng.randrange(0, 6)):
+                if not pkts:
+                    break
                 i = rng.randrange(len(pkts))
                 kind = rng.random()
                 if kind < 0.35 and i + 1 < len(pkts):

@@ -59,16 +59,19 @@ typedef struct {
 /* One call's inputs and outputs.  items/meta/data are the sink's batch
  * (ss_item records, SF_META_SIZE records, payload bytes); nitems, ndata and
  * frame are carried in and out; touched gets, in order of their last
- * packet, each flow slot the call touched and its last timestamp. */
+ * packet, each flow slot the call touched and its last timestamp.  When
+ * the lane stops (SF_RUN_STOP) at a record wholly in the buffer, rec gets
+ * that record as sf_pcap_records writes it (nrec = 1, rec_fast, rec_end:
+ * where the next record starts); else nrec = 0. */
 typedef struct {
     const uint8_t *buf;
     uint64_t len, pos;
     int32_t big, ethernet;
     uint32_t units, limit;
     double sweep_at;
-    uint8_t *items, *meta, *data, *touched;
-    uint32_t item_cap, nitems, ntouched, fast;
-    uint64_t data_cap, ndata, frame;
+    uint8_t *items, *meta, *data, *touched, *rec;
+    uint32_t item_cap, nitems, ntouched, fast, nrec, rec_fast;
+    uint64_t data_cap, ndata, frame, rec_end;
 } sf_run;
 
 sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep);

@@ -283,5 +283,13 @@ int sf_lane_run(sf_lane *L, sf_run *r)
     }
     r->ntouched = nt;
     r->pos = pos;
+    r->nrec = 0;
+    if (rc == SF_RUN_STOP && pos <= r->len) { /* the record Python takes, framed */
+        size_t end = 0, fast = 0;
+        r->nrec = (uint32_t)sf_pcap_records(buf, r->len, pos, r->big, r->units, r->limit,
+                                            r->ethernet, r->rec, 1, &end, &fast);
+        r->rec_end = end;
+        r->rec_fast = (uint32_t)fast;
+    }
     return rc;
 }

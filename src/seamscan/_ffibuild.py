@@ -59,9 +59,9 @@ typedef struct {
     int32_t big, ethernet;
     uint32_t units, limit;
     double sweep_at;
-    uint8_t *items, *meta, *data, *touched;
-    uint32_t item_cap, nitems, ntouched, fast;
-    uint64_t data_cap, ndata, frame;
+    uint8_t *items, *meta, *data, *touched, *rec;
+    uint32_t item_cap, nitems, ntouched, fast, nrec, rec_fast;
+    uint64_t data_cap, ndata, frame, rec_end;
 } sf_run;
 #define SF_KEY_SIZE ...
 #define SF_META_SIZE ...

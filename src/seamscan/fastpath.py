@@ -93,59 +93,63 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
     nfast = ffi.new("size_t *")
     records = lib.sf_pcap_records
     iter_unpack = _REC.iter_unpack
+    relend = lane.relend if lane is not None else None
+
+    def take(recs, buf, frame):
+        """Hand framed records to the tracker; the last frame number."""
+        for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, exact,
+             ts) in recs:
+            frame += 1
+            if not exact:
+                ts = (sec * units + frac) / units
+            if kind:
+                pkt = decode(frame, ts, linktype, buf[ps:pe])
+                if pkt is None:
+                    continue
+            else:
+                da = so + alen
+                pkt = _new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
+                                    ack, flags, buf[ps:pe], frame, ts))
+            side = packet(pkt)
+            if relend is not None and side is not None:
+                relend(side)
+        return frame
+
     base = 0  # stream offset of buf[0]
     pos = 24
     frame = 0
     reported = 0  # frame at the last progress report
-    # Records framed per call for Python to take: all there are without a
-    # lane; with one, one after each lane stop, doubling while the lane
-    # takes nothing (a capture the lane cannot help with), back to one when
-    # it does.  Only speed depends on it: Python takes any record correctly.
-    take = _REC_CAP
-    relend = None
+    # Records framed per call for Python to take, after a lane stop: one,
+    # doubling while the lane takes nothing (a capture it cannot help
+    # with), back to one when it does.  Only speed depends on it: Python
+    # takes any record correctly.  Without a lane: all there are.
+    want = 1 if lane is not None else _REC_CAP
     if lane is not None:
         lane.start(counts, big, units, limit, ethernet)
-        relend = lane.relend
-        take = 1
     while True:
         if lane is not None:
-            pos, frame, rc, handled = lane.run(buf, pos, frame)
-            if rc != _RUN_STOP:
-                take = 1
-                if progress is not None and frame - reported >= 4096:
-                    reported = frame
-                    progress(reader.position())
+            pos, frame, rc, handled, rec = lane.run(buf, pos, frame)
+            if rc == _RUN_STOP and rec is not None:  # the record the lane stopped at
+                frame = take(rec, buf, frame)
+                pos = lane.r.rec_end
+                want = 1 if handled else min(2 * want, _REC_CAP)
+            if progress is not None and frame - reported >= 4096:
+                reported = frame
+                progress(reader.position())
+            if rc != _RUN_STOP or (rec is not None and want == 1):
                 continue
-            take = 1 if handled else min(2 * take, _REC_CAP)
         n = records(ffi.from_buffer(buf), len(buf), pos, big, units, limit, ethernet, c_out,
-                    take, end_pos, nfast)
+                    want, end_pos, nfast)
         if n:
             fast = nfast[0]
             counts["frames"] += fast
             counts["decoded"] += fast
-            for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, exact,
-                 ts) in iter_unpack(view[:n * _REC.size]):
-                frame += 1
-                if not exact:
-                    ts = (sec * units + frac) / units
-                if kind:
-                    pkt = decode(frame, ts, linktype, buf[ps:pe])
-                    if pkt is not None:
-                        packet(pkt)
-                        if relend is not None:
-                            relend(pkt)
-                else:
-                    da = so + alen
-                    pkt = _new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                        ack, flags, buf[ps:pe], frame, ts))
-                    packet(pkt)
-                    if relend is not None:
-                        relend(pkt)
+            frame = take(iter_unpack(view[:n * _REC.size]), buf, frame)
             pos = end_pos[0]
             if progress is not None and frame - reported >= 4096:
                 reported = frame
                 progress(reader.position())
-            if n == take:
+            if n == want:
                 continue
         # The next record is not wholly in the buffer, or is too long: the
         # reader's own step, for this one record.
@@ -156,13 +160,17 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
         frame += 1
         pkt = decode(frame, (sec * units + frac) / units, linktype, data)
         if pkt is not None:
-            packet(pkt)
-            if relend is not None:
-                relend(pkt)
+            side = packet(pkt)
+            if relend is not None and side is not None:
+                relend(side)
 
 
 _RUN_STOP, _RUN_FULL = lib.SF_RUN_STOP, lib.SF_RUN_FULL
 _TOUCH = struct.Struct("=I4xd")
+# sf_side_state: next, sink_next, packets, bytes, expect, tail_len, proto,
+# side_code, transport, pad, port, pad2, cflags (and padding to 8 bytes)
+_STATE = struct.Struct("=QQQQIIBBBBHHI4x")
+assert _STATE.size == ffi.sizeof("sf_side_state")
 _NO_RESET = (1 << 64) - 1  # sf_side_state.sink_next: the next item resets the slot
 
 
@@ -191,12 +199,15 @@ class Lane:
         self.c = ffi.gc(c, lib.sf_lane_free)
         self.flows = {}  # flow slot -> lent flow
         self.lent = bytearray(2 * tracker.max_flows)  # per side slot: lent?
-        self.st = ffi.new("sf_side_state *")
         self.tail = ffi.new("uint8_t[]", 2 * self.keep + 1)
         self._tail = ffi.buffer(self.tail)
         self.touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * lib.SF_RUN_MAX)
         self._touched = ffi.buffer(self.touched)
         self.r = ffi.new("sf_run *")
+        self.rec = ffi.new("uint8_t[]", _REC.size)
+        self._rec = ffi.buffer(self.rec)
+        self._st = bytearray(_STATE.size)
+        self.st = ffi.from_buffer("sf_side_state *", self._st)
         self._buf = self._buf_c = None
         self._keys = {}  # side slot -> (side, its key or None), for the side last seen there
         tracker.reclaim = self.reclaim
@@ -206,6 +217,7 @@ class Lane:
         r = self.r
         r.big, r.units, r.limit, r.ethernet = big, units, limit, ethernet
         r.touched = self.touched
+        r.rec = self.rec
         self.counts = counts
         self._data = None
 
@@ -247,15 +259,20 @@ class Lane:
                     udp_touch(flow)
         if rc == _RUN_FULL:
             sink.flush()
-        return r.pos, r.frame, rc, handled
+        rec = None
+        if r.nrec:
+            fast = r.rec_fast
+            if fast:
+                counts = self.counts
+                counts["frames"] += 1
+                counts["decoded"] += 1
+            rec = _REC.iter_unpack(self._rec)
+        return r.pos, r.frame, rc, handled, rec
 
-    def relend(self, pkt):
-        """Lend the qualifying sides of ``pkt``'s flow, once the tracker has
-        handled ``pkt``."""
-        s = self.tracker._sides.get((pkt.src, pkt.sport, pkt.dst, pkt.dport, pkt.proto))
-        if s is None:
-            return
-        flow = s.flow
+    def relend(self, side):
+        """Lend the qualifying sides of ``side``'s flow, once the tracker has
+        handled a packet of it."""
+        flow = side.flow
         if flow.end_reason is not None:
             return
         lent = self.lent
@@ -272,19 +289,18 @@ class Lane:
             c = sink.ctx.get(flow)
             if c is None:
                 c = sink._begin(flow)
-            st = self.st
-            _slot, st.side_code, st.transport, st.port, st.cflags, _t = c[s.side]
-            st.proto = flow.proto
-            st.next = s.next
+            _slot, side_code, transport, port, cflags, _t = c[s.side]
             nxt = sink.next_offset[sid]
-            st.sink_next = nxt if nxt >= 0 else _NO_RESET
             if tcp:
-                tail = s.recent[0] if len(s.recent) == 1 else b"".join(s.recent)
-                st.expect = s.expect
+                recent = s.recent
+                tail = recent[0] if len(recent) == 1 else b"".join(recent)
+                expect = s.expect
             else:
                 tail = b""
-            st.tail_len = len(tail)
-            if lib.sf_lane_lend(self.c, sid, key, st, tail) != 0:
+                expect = 0
+            _STATE.pack_into(self._st, 0, s.next, nxt if nxt >= 0 else _NO_RESET, 0, 0, expect,
+                             len(tail), flow.proto, side_code, transport, 0, port, 0, cflags)
+            if lib.sf_lane_lend(self.c, sid, key, self.st, tail) != 0:
                 continue  # not lent: the tracker keeps the side (only speed differs)
             lent[sid] = 1
             flow.lent = True
@@ -307,25 +323,26 @@ class Lane:
         self._keys[sid] = (s, key)
         return key
 
-    def reclaim(self, flow):
-        """Take a flow's lent sides back into the tracker (its ``reclaim`` hook)."""
-        st = self.st
+    def reclaim(self, flow, side):
+        """Take ``side`` (None: both sides) of a flow back into the tracker,
+        if lent: the tracker's ``reclaim`` hook."""
         lent = self.lent
-        for s in flow._sides:
-            sid = 2 * flow.slot + s.side
+        base = 2 * flow.slot
+        for s in flow._sides if side is None else (side,):
+            sid = base + s.side
             if not lent[sid]:
                 continue
-            lib.sf_lane_reclaim(self.c, sid, st, self.tail)
+            lib.sf_lane_reclaim(self.c, sid, self.st, self.tail)
             lent[sid] = 0
-            s.next = st.next
+            nxt, sink_next, packets, nbytes, expect, n = _STATE.unpack_from(self._st)[:6]
+            s.next = nxt
             if flow.proto == 6:
-                s.expect = st.expect
-                n = st.tail_len
+                s.expect = expect
                 s.recent = [self._tail[:n]] if n else []
                 s.recent_len = n
-            flow.packets[s.side] += st.packets
-            flow.bytes[s.side] += st.bytes
-            nxt = st.sink_next
-            self.sink.next_offset[sid] = -1 if nxt == _NO_RESET else nxt
-        flow.lent = False
-        del self.flows[flow.slot]
+            flow.packets[s.side] += packets
+            flow.bytes[s.side] += nbytes
+            self.sink.next_offset[sid] = -1 if sink_next == _NO_RESET else sink_next
+        if not (lent[base] or lent[base + 1]):
+            flow.lent = False
+            del self.flows[flow.slot]

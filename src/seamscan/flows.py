@@ -298,16 +298,23 @@ class FlowTracker:
         # A fast lane (seamscan.fastpath) may hold some sides' reassembly
         # state (next, expect, the delivered tail) and counts (packets,
         # bytes) while it delivers their in-order packets; such a flow has
-        # `lent` set, and the tracker calls reclaim(flow) to take them back
-        # before it reads or changes the flow.  Last timestamps and the idle
-        # order are brought up to date by the lane before each packet the
-        # tracker sees.
+        # `lent` set.  Only sides with nothing held and no FIN are lent, and
+        # a packet changes only its sender's state, so before the tracker
+        # handles a packet of such a flow it calls reclaim(flow, side) to
+        # take back the sender's side; before a flow ends, reclaim(flow,
+        # None) takes back both.  (A packet of the other side may recompute
+        # a lent side's `expect` from stale fields: the lane's value replaces
+        # it when that side comes back.)  Last timestamps and the idle order
+        # are brought up to date by the lane before each packet the tracker
+        # sees.
         self.reclaim = None
 
     # -- packets ----------------------------------------------------------
 
-    def packet(self, pkt) -> None:
-        """Account one decoded packet; emits the sink events it makes due."""
+    def packet(self, pkt):
+        """Account one decoded packet; emits the sink events it makes due.
+        Returns the sender's side (its `flow` may have ended), or None if the
+        packet was ignored."""
         proto, src, dst, sport, dport, seq, _ack, flags, payload, frame, ts = pkt
         if ts >= self._sweep_at:
             self._sweep(ts)
@@ -315,10 +322,10 @@ class FlowTracker:
         if s is None:
             s = self._new_flow(pkt)
             if s is None:
-                return
+                return None
         flow = s.flow
         if flow.lent:
-            self.reclaim(flow)
+            self.reclaim(flow, s)
         flow.last_ts = ts
         side = s.side
         flow.packets[side] += 1
@@ -337,9 +344,9 @@ class FlowTracker:
                         s.recent_len = tail = s.recent_len + n
                         if tail > self._tail_cap:
                             self._trim_tail(s)
-                        return
+                        return s
                 elif s.started:
-                    return
+                    return s
             self._tcp_segment(s, pkt)
         else:
             self._udp_touch(flow)
@@ -349,6 +356,7 @@ class FlowTracker:
                 self._data(flow, side, off, payload, frame, ts, True)
                 s.next = off + n
                 flow.bytes[side] += n
+        return s
 
     def finish(self) -> None:
         """End of capture: flows idle past their timeout end "idle", the rest "capture_end".
@@ -461,7 +469,7 @@ class FlowTracker:
     def _end_flow(self, flow, reason):
         """Give up open holes, deliver what is held, emit end, free the slot."""
         if flow.lent:
-            self.reclaim(flow)
+            self.reclaim(flow, None)
         for s in flow._sides:
             self._flush(s)
         flow.end_reason = reason

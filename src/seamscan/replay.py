@@ -210,15 +210,20 @@ class ScanSink:
         by_slot, retired = self.by_slot, self._retired
         ei = 0
         due = events[0][0] if events else n  # item position of the next event
+        last = -1  # the item whose flow, frame, ts and template are at hand
         for item, sig, start, end in found:
             while item >= due:
                 self._event(events[ei][1])
                 ei += 1
                 due = events[ei][0] if ei < len(events) else n
-            frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
-            flow = self._owner(slot >> 1, item) if retired else by_slot[slot >> 1]
+            if item != last:
+                last = item
+                frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
+                fslot = slot >> 1
+                flow = by_slot[fslot] if fslot not in retired else self._owner(fslot, item)
+                template = ctx[flow][slot & 1][5]
             flow.matches += 1
-            record = ctx[flow][slot & 1][5].copy()
+            record = template.copy()
             record["sig"] = ids[sig]
             record["start"] = start
             record["end"] = end
