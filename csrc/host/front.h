@@ -62,7 +62,8 @@ typedef struct {
  * packet, each flow slot the call touched and its last timestamp.  When
  * the lane stops (SF_RUN_STOP) at a record wholly in the buffer, rec gets
  * that record as sf_pcap_records writes it (nrec = 1, rec_fast, rec_end:
- * where the next record starts); else nrec = 0. */
+ * where the next record starts); else nrec = 0.  retransmitted: payload
+ * bytes of this call's segments that only repeated delivered bytes. */
 typedef struct {
     const uint8_t *buf;
     uint64_t len, pos;
@@ -71,7 +72,7 @@ typedef struct {
     double sweep_at;
     uint8_t *items, *meta, *data, *touched, *rec;
     uint32_t item_cap, nitems, ntouched, fast, nrec, rec_fast;
-    uint64_t data_cap, ndata, frame, rec_end;
+    uint64_t data_cap, ndata, frame, rec_end, retransmitted;
 } sf_run;
 
 sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep);

@@ -183,6 +183,25 @@ static void keep_tail(side *S, const uint8_t *p, uint32_t n, uint32_t keep)
     }
 }
 
+/* Is a segment at sequence number seq (not the expected one) wholly made of
+ * bytes already delivered, agreeing with the kept tail where the tail
+ * reaches?  That is FlowTracker._receive finding only retransmitted bytes:
+ * within 2**30 before the next byte (RFC 7323's largest window), not
+ * before the stream's start, ending at or before the next byte. */
+static int old_copy(const side *S, uint32_t seq, const uint8_t *p, uint32_t n)
+{
+    int64_t d = (int64_t)(int32_t)(seq - S->st.expect); /* RFC 9293 arithmetic */
+    uint64_t next = S->st.next, off, tail_start, skip;
+    if (d >= 0 || d < -((int64_t)1 << 30) || d + (int64_t)n > 0 || (uint64_t)(-d) > next)
+        return 0;
+    off = next - (uint64_t)(-d);
+    tail_start = next - S->st.tail_len;
+    skip = off < tail_start ? tail_start - off : 0; /* older than the tail: not compared */
+    if (skip >= n)
+        return 1;
+    return memcmp(p + skip, S->tail + (off + skip - tail_start), n - skip) == 0;
+}
+
 int sf_lane_run(sf_lane *L, sf_run *r)
 {
     const uint8_t *buf = r->buf;
@@ -190,6 +209,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
     uint32_t nlog = 0, i, nt = 0;
     int rc = SF_RUN_STOP;
     uint8_t key[SF_KEY_SIZE];
+    r->retransmitted = 0;
     for (;;) {
         const uint8_t *h = buf + pos, *f = h + 16;
         uint32_t sec, frac, caplen, n;
@@ -228,8 +248,21 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             break;
         S = &L->sides[sid];
         n = k.pe - k.ps;
-        if (k.proto == 6 && ((k.flags & 7u) || (n && k.seq != S->st.expect)))
-            break; /* FIN, SYN, RST or out of order: the tracker's general path */
+        if (k.proto == 6 && (k.flags & 7u))
+            break; /* FIN, SYN or RST: the tracker's general path */
+        if (k.proto == 6 && n && k.seq != S->st.expect) {
+            if (!old_copy(S, k.seq, f + k.ps, n))
+                break; /* ahead, partly new, or disagreeing: the tracker's general path */
+            r->frame++;
+            L->last_ts[sid >> 1] = ts;
+            L->last_pos[sid >> 1] = nlog;
+            L->log[nlog++] = (uint32_t)(sid >> 1);
+            S->st.packets++;
+            r->retransmitted += n;
+            r->fast++;
+            pos += 16u + caplen;
+            continue;
+        }
         if (n && (r->nitems >= r->item_cap || r->ndata + n > r->data_cap)) {
             rc = SF_RUN_FULL;
             break;

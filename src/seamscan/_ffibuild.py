@@ -61,7 +61,7 @@ typedef struct {
     double sweep_at;
     uint8_t *items, *meta, *data, *touched, *rec;
     uint32_t item_cap, nitems, ntouched, fast, nrec, rec_fast;
-    uint64_t data_cap, ndata, frame, rec_end;
+    uint64_t data_cap, ndata, frame, rec_end, retransmitted;
 } sf_run;
 #define SF_KEY_SIZE ...
 #define SF_META_SIZE ...

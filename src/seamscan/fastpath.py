@@ -119,11 +119,13 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
     pos = 24
     frame = 0
     reported = 0  # frame at the last progress report
-    # Records framed per call for Python to take, after a lane stop: one,
-    # doubling while the lane takes nothing (a capture it cannot help
-    # with), back to one when it does.  Only speed depends on it: Python
-    # takes any record correctly.  Without a lane: all there are.
+    # Records framed per call for Python to take, after a lane stop: one;
+    # after 64 stops in a row where the lane took nothing (a capture it
+    # cannot help with), doubling at each such stop, back to one when it
+    # takes a record.  Only speed depends on it: Python takes any record
+    # correctly.  Without a lane: all there are.
     want = 1 if lane is not None else _REC_CAP
+    misses = 0
     if lane is not None:
         lane.start(counts, big, units, limit, ethernet)
     while True:
@@ -132,7 +134,12 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
             if rc == _RUN_STOP and rec is not None:  # the record the lane stopped at
                 frame = take(rec, buf, frame)
                 pos = lane.r.rec_end
-                want = 1 if handled else min(2 * want, _REC_CAP)
+                if handled:
+                    misses, want = 0, 1
+                else:
+                    misses += 1
+                    if misses >= 64:
+                        want = min(2 * want, _REC_CAP)
             if progress is not None and frame - reported >= 4096:
                 reported = frame
                 progress(reader.position())
@@ -224,7 +231,7 @@ class Lane:
     def run(self, buf, pos, frame):
         """C takes the records from ``pos`` on; (pos, frame, stop reason,
         records it took)."""
-        r, sink = self.r, self.sink
+        r, sink, tracker = self.r, self.sink, self.tracker
         if buf is not self._buf:
             self._buf, self._buf_c = buf, ffi.from_buffer(buf)
             r.buf = self._buf_c
@@ -235,7 +242,7 @@ class Lane:
             r.item_cap, r.data_cap = sink.item_cap, sink.data_cap
         r.pos = pos
         r.frame = frame
-        r.sweep_at = self.tracker._sweep_at
+        r.sweep_at = tracker._sweep_at
         r.nitems = sink.n
         r.ndata = sink.nbytes
         rc = lib.sf_lane_run(self.c, r)
@@ -247,8 +254,9 @@ class Lane:
             counts = self.counts
             counts["frames"] += handled
             counts["decoded"] += handled
+            if r.retransmitted:
+                tracker.counters["retransmitted_bytes"] += r.retransmitted
             flows = self.flows
-            tracker = self.tracker
             tcp_touch, udp_touch = tracker._tcp_touch, tracker._udp_touch
             for fslot, ts in _TOUCH.iter_unpack(self._touched[:r.ntouched * _TOUCH.size]):
                 flow = flows[fslot]
