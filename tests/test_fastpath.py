@@ -321,8 +321,9 @@ def test_switch_is_on_by_default_and_0_selects_python(monkeypatch):
 # that keep crossing between the two (SYN/FIN/RST, reordering,
 # retransmissions, disagreeing overlaps, lost segments, VLAN-tagged frames
 # of the same flows that only the Python decoder takes, idle timeouts,
-# eviction, a flow from an endpoint to itself, timestamps that go back)
-# must give exactly the records and counters of SEAMSCAN_FASTPATH=0.
+# eviction, a flow from an endpoint to itself, timestamps that go back,
+# both byte orders and timestamp resolutions, captures cut short) must give
+# exactly the records, counters and errors of SEAMSCAN_FASTPATH=0.
 
 LANE_SIGS = seamscan.signature_set([
     {"id": "lane-ab", "text": "ab"},
@@ -436,7 +437,12 @@ def test_lane_equals_the_python_tracker_on_random_conversations(tmp_path, monkey
               {"keep_bytes": 0, "hold_bytes": 4, "hold_total": 9}, {"max_flows": 1, "tcp_idle": 1}]
     for trial in range(120):
         recs = lane_capture(rng, rng.randrange(1, 12))
-        path = write(tmp_path, pcap_bytes(recs), f"lane{trial}.pcap")
+        if trial % 3 == 1:  # nanosecond fractions
+            recs = [(sec, usec * 1000 + rng.randrange(1000), f) for sec, usec, f in recs]
+        data = pcap_bytes(recs, big=trial % 2 == 1, nano=trial % 3 == 1)
+        if trial % 7 == 3:  # damaged: cut short, the replay stops there in both paths
+            data = data[: rng.randrange(24, len(data) + 1)]
+        path = write(tmp_path, data, f"lane{trial}.pcap")
         options = limits[trial % len(limits)]
         py, c = replay_both(path, table, monkeypatch, **options)
         assert c == py, (trial, options)

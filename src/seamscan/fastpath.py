@@ -1,4 +1,4 @@
-"""The replay's C front end: classic pcap framing and fast decode in C.
+"""The replay's C front end: classic pcap framing, fast decode and the fast lane.
 
 ``feed(path, decoder, packet, progress)`` does what ``replay._feed`` does
 (every record of the capture decoded and each TCP/UDP packet handed to
@@ -14,8 +14,21 @@ decoder's fast path takes (untagged Ethernet, IPv4 without options and not
 a fragment or IPv6 without extension headers, TCP or UDP); every other
 frame goes through ``Decoder.decode`` unchanged.  A record that is not
 wholly in the buffer, or too long, is handled by the same steps as
-``CaptureReader._pcap_record``, the reader's own one-record step (refill, or the exact ``CaptureError``).
-A pcapng file is read by the reader as before.
+``CaptureReader._pcap_record``, the reader's own one-record step (refill,
+or the exact ``CaptureError``).  A pcapng file is read by the reader as
+before.
+
+The fast lane (``feed(..., lane=Lane(tracker, sink))``, what
+``replay_file`` uses): most packets of a replay are in-order segments or
+bare ACKs of flows already known, and for those the flow tracker's
+decisions are foregone.  The tracker lends such flow sides to
+``csrc/host/lane.c``, which takes records straight from the buffer into the
+sink's scan batch as long as they are of lent sides and need no decision;
+at the first record that does, it stops and Python takes that record as
+above (the tracker reclaims the side first).  Records, counters and their
+order are exactly those of the pure-Python path: ``tests/test_fastpath.py``
+and every replay in ``tests/test_replay.py`` compare the two.  See
+:class:`Lane`.
 
 Record written by C per frame (``SF_REC_SIZE`` = 48 bytes, host byte
 order, no padding): kind (0 decoded here, 1 left to the decoder), proto,
@@ -24,10 +37,9 @@ of the source address (the destination follows it), payload start and end
 (for kind 1: the frame's start and end), the header's seconds and fraction,
 whether ``ts`` is exact, ``ts``.  ``ts`` equals the reader's
 ``(sec * units + frac) / units`` whenever the numerator is below 2**53;
-otherwise Python computes it.
+otherwise Python computes it (the lane stops at such a record).
 
-Progress is reported after each C call (every few thousand records), not
-every 4096 records exactly.
+Progress is reported every 4096 records or so, not every 4096 exactly.
 """
 
 from __future__ import annotations
@@ -189,11 +201,14 @@ class Lane:
     that qualify (TCP: ``expect`` set, i.e. started, nothing held, no FIN;
     UDP: any), each under its sender's key when the tracker's own lookup
     gives that side for the key; the tracker calls ``reclaim`` (its
-    ``reclaim`` hook) before it touches a lent flow again.  ``run`` lets C
-    handle records up to the next one it cannot (a new or unlent flow, a
-    SYN, FIN or RST, an out-of-order segment, a frame the C decode does not
-    take, a due idle sweep, an inexact timestamp), then brings every touched
-    flow's last timestamp and idle order up to date.
+    ``reclaim`` hook) before it handles a packet of a lent side, and for
+    both sides before a flow ends.  ``run`` lets C handle records up to the
+    next one it cannot (a new or unlent flow side, a SYN, FIN or RST, a
+    segment ahead of the next byte or partly new or disagreeing with the
+    delivered tail, a frame the C decode does not take, a due idle sweep,
+    an inexact timestamp, a full batch), then brings every touched flow's
+    last timestamp and idle order up to date, in the order of their last
+    packets.
     """
 
     def __init__(self, tracker, sink):
