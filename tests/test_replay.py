@@ -1092,6 +1092,9 @@ def test_cli_damaged_capture_keeps_what_was_found(tmp_path, rules):
     assert str(cut) in out.stderr and f"after frame {frames - 1}" in out.stderr
     assert "offset" in out.stderr and "Traceback" not in out.stderr
     assert f"record {frames}" in errors[0]["message"]
+    table_out = cli("scan", cut, "--rules", rules, "--format", "table").stdout
+    damage = [line for line in table_out.splitlines() if line.startswith("!! ")]
+    assert len(damage) == 1 and damage[0].count(str(cut)) == 1  # the path said once
 
 
 @pytest.mark.parametrize("kind", ["pcapng_cut", "gzip_cut", "header_cut"])

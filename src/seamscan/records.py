@@ -106,7 +106,10 @@ class TableWriter:
         elif kind == "flow":
             self._flow(rec, self.pending.pop(self._key(rec), []))
         elif kind == "error":
-            self.out.write(f"!! {rec['file']}: {rec['message']}\n\n")
+            message = rec["message"]  # the reader's messages name the file first
+            if not message.startswith(rec["file"]):
+                message = f"{rec['file']}: {message}"
+            self.out.write(f"!! {message}\n\n")
         elif kind == "summary":
             self._summary(rec)
 
