@@ -32,7 +32,8 @@ Output formats:
 
 Offsets (start, end) are 0-based byte offsets in the stream of the side that
 sent the bytes, end exclusive; frame is the 1-based record number, in its
-file, of the packet that completed the match.
+file, of the packet that completed the match (carried its last byte; with
+reordered segments that can precede the packet that filled the hole).
 
 Examples:
   seamscan scan pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml
