@@ -219,7 +219,8 @@ class Lane:
         if c == ffi.NULL:
             raise MemoryError("seamscan: cannot allocate the replay's flow table")
         self.c = ffi.gc(c, lib.sf_lane_free)
-        self.flows = {}  # flow slot -> lent flow
+        self.flows = [None] * tracker.max_flows  # flow slot -> lent flow
+        self.touches = [None] * tracker.max_flows  # flow slot -> its LRU's move_to_end
         self.lent = bytearray(2 * tracker.max_flows)  # per side slot: lent?
         self.tail = ffi.new("uint8_t[]", 2 * self.keep + 1)
         self._tail = ffi.buffer(self.tail)
@@ -271,15 +272,11 @@ class Lane:
             counts["decoded"] += handled
             if r.retransmitted:
                 tracker.counters["retransmitted_bytes"] += r.retransmitted
-            flows = self.flows
-            tcp_touch, udp_touch = tracker._tcp_touch, tracker._udp_touch
+            flows, touches = self.flows, self.touches
             for fslot, ts in _TOUCH.iter_unpack(self._touched[:r.ntouched * _TOUCH.size]):
                 flow = flows[fslot]
                 flow.last_ts = ts
-                if flow.proto == 6:
-                    tcp_touch(flow)
-                else:
-                    udp_touch(flow)
+                touches[fslot](flow)
         if rc == _RUN_FULL:
             sink.flush()
         rec = None
@@ -328,6 +325,8 @@ class Lane:
             lent[sid] = 1
             flow.lent = True
             self.flows[flow.slot] = flow
+            self.touches[flow.slot] = (self.tracker._tcp_touch if tcp
+                                       else self.tracker._udp_touch)
 
     def _key(self, flow, s, sid):
         """Side ``s``'s sender key (``SF_KEY_SIZE`` bytes), or None when the
@@ -368,4 +367,4 @@ class Lane:
             self.sink.next_offset[sid] = -1 if sink_next == _NO_RESET else sink_next
         if not (lent[base] or lent[base + 1]):
             flow.lent = False
-            del self.flows[flow.slot]
+            self.flows[flow.slot] = self.touches[flow.slot] = None
