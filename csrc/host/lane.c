@@ -210,6 +210,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
     int rc = SF_RUN_STOP;
     uint8_t key[SF_KEY_SIZE];
     r->retransmitted = 0;
+    r->fast = 0;
     for (;;) {
         const uint8_t *h = buf + pos, *f = h + 16;
         uint32_t sec, frac, caplen, n;
@@ -319,10 +320,10 @@ int sf_lane_run(sf_lane *L, sf_run *r)
     r->nrec = 0;
     if (rc == SF_RUN_STOP && pos <= r->len) { /* the record Python takes, framed */
         size_t end = 0, fast = 0;
-        r->nrec = (uint32_t)sf_pcap_records(buf, r->len, pos, r->big, r->units, r->limit,
+        r->nrec = sf_pcap_records(buf, r->len, pos, r->big, r->units, r->limit,
                                             r->ethernet, r->rec, 1, &end, &fast);
         r->rec_end = end;
-        r->rec_fast = (uint32_t)fast;
+        r->rec_fast = fast;
     }
     return rc;
 }

@@ -54,14 +54,18 @@ typedef struct {
     uint32_t cflags;
 } sf_side_state;
 typedef struct {
+    /* carried in and out, every call: the first fields, for one pack */
+    uint64_t pos, frame, nitems, ndata;
+    double sweep_at;
+    /* out */
+    uint64_t fast, ntouched, nrec, rec_fast, rec_end, retransmitted;
+    /* set when they change */
     const uint8_t *buf;
-    uint64_t len, pos;
+    uint64_t len;
+    uint8_t *items, *meta, *data, *touched, *rec;
+    uint64_t item_cap, data_cap;
     int32_t big, ethernet;
     uint32_t units, limit;
-    double sweep_at;
-    uint8_t *items, *meta, *data, *touched, *rec;
-    uint32_t item_cap, nitems, ntouched, fast, nrec, rec_fast;
-    uint64_t data_cap, ndata, frame, rec_end, retransmitted;
 } sf_run;
 #define SF_KEY_SIZE ...
 #define SF_META_SIZE ...

@@ -145,7 +145,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
             pos, frame, rc, handled, rec = lane.run(buf, pos, frame)
             if rc == _RUN_STOP and rec is not None:  # the record the lane stopped at
                 frame = take(rec, buf, frame)
-                pos = lane.r.rec_end
+                pos = lane.rec_end()
                 if handled:
                     misses, want = 0, 1
                 else:
@@ -189,6 +189,11 @@ _TOUCH = struct.Struct("=I4xd")
 # sf_side_state: next, sink_next, packets, bytes, expect, tail_len, proto,
 # side_code, transport, pad, port, pad2, cflags (and padding to 8 bytes)
 _STATE = struct.Struct("=QQQQIIBBBBHHI4x")
+# sf_run's first fields: pos, frame, nitems, ndata, sweep_at (carried in and
+# out), then fast, ntouched, nrec, rec_fast, rec_end, retransmitted (out)
+_RUN_IN = struct.Struct("=QQQQd")
+_RUN_OUT = struct.Struct("=QQQQdQQQQQQ")
+assert ffi.offsetof("sf_run", "retransmitted") + 8 == _RUN_OUT.size
 assert _STATE.size == ffi.sizeof("sf_side_state")
 _NO_RESET = (1 << 64) - 1  # sf_side_state.sink_next: the next item resets the slot
 
@@ -226,7 +231,8 @@ class Lane:
         self._tail = ffi.buffer(self.tail)
         self.touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * lib.SF_RUN_MAX)
         self._touched = ffi.buffer(self.touched)
-        self.r = ffi.new("sf_run *")
+        self._r = bytearray(ffi.sizeof("sf_run"))
+        self.r = ffi.from_buffer("sf_run *", self._r)
         self.rec = ffi.new("uint8_t[]", _REC.size)
         self._rec = ffi.buffer(self.rec)
         self._st = bytearray(_STATE.size)
@@ -246,7 +252,7 @@ class Lane:
 
     def run(self, buf, pos, frame):
         """C takes the records from ``pos`` on; (pos, frame, stop reason,
-        records it took)."""
+        records it took, the framed record it stopped at or None)."""
         r, sink, tracker = self.r, self.sink, self.tracker
         if buf is not self._buf:
             self._buf, self._buf_c = buf, ffi.from_buffer(buf)
@@ -256,38 +262,36 @@ class Lane:
             self._data = sink.c_data
             r.items, r.meta, r.data = sink.c_items, sink.c_meta, sink.c_data
             r.item_cap, r.data_cap = sink.item_cap, sink.data_cap
-        r.pos = pos
-        r.frame = frame
-        r.sweep_at = tracker._sweep_at
-        r.nitems = sink.n
-        r.ndata = sink.nbytes
+        rbuf = self._r
+        _RUN_IN.pack_into(rbuf, 0, pos, frame, sink.n, sink.nbytes, tracker._sweep_at)
         rc = lib.sf_lane_run(self.c, r)
-        handled = r.fast
+        (pos, frame, sink.n, sink.nbytes, _, handled, ntouched, nrec, rec_fast, _,
+         retransmitted) = _RUN_OUT.unpack_from(rbuf, 0)
         if handled:
-            sink.n = r.nitems
-            sink.nbytes = r.ndata
-            r.fast = 0
             counts = self.counts
             counts["frames"] += handled
             counts["decoded"] += handled
-            if r.retransmitted:
-                tracker.counters["retransmitted_bytes"] += r.retransmitted
+            if retransmitted:
+                tracker.counters["retransmitted_bytes"] += retransmitted
             flows, touches = self.flows, self.touches
-            for fslot, ts in _TOUCH.iter_unpack(self._touched[:r.ntouched * _TOUCH.size]):
+            for fslot, ts in _TOUCH.iter_unpack(self._touched[:ntouched * _TOUCH.size]):
                 flow = flows[fslot]
                 flow.last_ts = ts
                 touches[fslot](flow)
         if rc == _RUN_FULL:
             sink.flush()
         rec = None
-        if r.nrec:
-            fast = r.rec_fast
-            if fast:
+        if nrec:
+            if rec_fast:
                 counts = self.counts
                 counts["frames"] += 1
                 counts["decoded"] += 1
             rec = _REC.iter_unpack(self._rec)
-        return r.pos, r.frame, rc, handled, rec
+        return pos, frame, rc, handled, rec
+
+    def rec_end(self):
+        """Where the record after the one ``run`` stopped at starts."""
+        return self.r.rec_end
 
     def relend(self, side):
         """Lend the qualifying sides of ``side``'s flow, once the tracker has
