@@ -291,8 +291,11 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
     try:
         if fastpath_enabled():
             from seamscan import fastpath
-            result.error = fastpath.feed(path, decoder, tracker.packet, progress,
-                                         fastpath.Lane(tracker, sink))
+            try:
+                lane = fastpath.Lane(tracker, sink)
+            except MemoryError:  # no room for its flow table: without it (same records)
+                lane = None
+            result.error = fastpath.feed(path, decoder, tracker.packet, progress, lane)
         else:
             result.error = _feed(path, decoder.decode, tracker.packet, progress)
         decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
