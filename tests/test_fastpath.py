@@ -469,3 +469,53 @@ def test_lane_fills_batches_and_keeps_long_streams(tmp_path, monkeypatch):
                             keep_bytes=keep)
         assert c == py
         assert py[1]["overlap_conflicts"] > 0
+
+
+def test_lane_flow_table_under_churn():
+    # The lane's open-addressing table (linear probing, deletion by backward
+    # shift), small enough that keys collide: after random lends and
+    # reclaims, a packet is taken by the lane exactly when its side is lent.
+    from seamscan.fastpath import _STATE, ffi, lib
+
+    rng = random.Random(11)
+    max_flows = 8
+    lane = ffi.gc(lib.sf_lane_new(max_flows, 16), lib.sf_lane_free)
+    items = ffi.new("uint8_t[]", 40 * 8)
+    meta = ffi.new("uint8_t[]", lib.SF_META_SIZE * 8)
+    data = ffi.new("uint8_t[]", 4096)
+    touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * lib.SF_RUN_MAX)
+    rec = ffi.new("uint8_t[]", 48)
+    st_buf = bytearray(_STATE.size)
+    st = ffi.from_buffer("sf_side_state *", st_buf)
+    tail = ffi.new("uint8_t[]", 64)
+    hosts = [bytes([192, 0, 2, h]) for h in range(1, 6)]
+    keys = {}  # sid -> (src, dst, sport, dport) while lent
+    for step in range(3000):
+        sid = rng.randrange(2 * max_flows)
+        if sid in keys:
+            lib.sf_lane_reclaim(lane, sid, st, tail)
+            del keys[sid]
+        else:
+            taken = set(keys.values())
+            while True:
+                ep = (rng.choice(hosts), rng.choice(hosts), rng.randrange(3), rng.randrange(3))
+                if ep not in taken:
+                    break
+            src, dst, sport, dport = ep
+            key = (bytes((17, 4)) + sport.to_bytes(2, "big") + dport.to_bytes(2, "big")
+                   + b"\0\0" + src.ljust(16, b"\0") + dst.ljust(16, b"\0"))
+            _STATE.pack_into(st_buf, 0, 0, 0, 0, 0, 0, 0, 17, 1, 2, 0, dport, 0, 3)
+            assert lib.sf_lane_lend(lane, sid, key, st, ffi.NULL) == 0
+            keys[sid] = ep
+        src, dst, sport, dport = rng.choice(list(keys.values()) or [(hosts[0],) * 2 + (0, 0)])
+        if rng.random() < 0.3:  # an endpoint pair that may not be lent
+            src, dport = rng.choice(hosts), rng.randrange(3)
+        frame = raw_frame(False, 17, src, dst, sport, dport, 0, 0, b"twelve bytes")
+        buf = pcap_bytes([(1, 0, frame)])
+        c_buf = ffi.from_buffer(buf)
+        r = ffi.new("sf_run *")
+        r.pos, r.sweep_at, r.buf, r.len = 24, float("inf"), c_buf, len(buf)
+        r.items, r.meta, r.data, r.touched, r.rec = items, meta, data, touched, rec
+        r.item_cap, r.data_cap, r.units, r.limit, r.ethernet = 8, 4096, 10**6, 65535, 1
+        lib.sf_lane_run(lane, r)
+        assert r.fast == ((src, dst, sport, dport) in keys.values()), step

@@ -156,9 +156,10 @@ void sf_lane_reclaim(sf_lane *L, uint32_t sid, sf_side_state *st, uint8_t *tail)
     if (S->st.tail_len)
         memcpy(tail, S->tail, S->st.tail_len);
     h = hash_key(S->key, L->mask);
-    while (L->index[h] != sid + 1u)
+    while (L->index[h] != sid + 1u && L->index[h] != 0)
         h = (h + 1u) & L->mask;
-    unindex(L, h);
+    if (L->index[h] == sid + 1u)
+        unindex(L, h);
     S->lent = 0;
     free(S->tail);
     S->tail = NULL;
