@@ -114,15 +114,14 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
             frame += 1
             if not exact:
                 ts = (sec * units + frac) / units
-            if kind:
+            if kind:  # a frame C does not decode: lending its flow would not help
                 pkt = decode(frame, ts, linktype, buf[ps:pe])
-                if pkt is None:
-                    continue
-            else:
-                da = so + alen
-                pkt = _new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                    ack, flags, buf[ps:pe], frame, ts))
-            side = packet(pkt)
+                if pkt is not None:
+                    packet(pkt)
+                continue
+            da = so + alen
+            side = packet(_new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
+                                        ack, flags, buf[ps:pe], frame, ts)))
             if relend is not None and side is not None:
                 relend(side)
         return frame
