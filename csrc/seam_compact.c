@@ -128,30 +128,32 @@ DEFINE_STEP(step4, 4u)
 #endif
 
 /* The matches of state s ending at `end`: its own outputs and those along
- * its failure chain, then put in signature order. */
-static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, ss_match *out,
+ * its failure chain, in signature order.  Each round walks the chain for
+ * the smallest signature above the last one taken, so the order needs no
+ * buffer and no signature comes twice; a valid state has at most
+ * max_outputs, so that many rounds take them all. */
+static size_t emit(const ss_table *t, uint32_t s0, uint64_t end, const lane *ln, ss_match *out,
                    size_t n)
 {
     const uint32_t ow = t->out_width;
-    size_t first = n, i, j;
-    uint32_t guard = t->max_len + 1u, r;
-    while (s != 0 && guard--) {
-        uint32_t w = word(t, s);
-        if (!(w & W_MATCH))
-            break;
-        if ((w & W_OWN) && rank_of(t->own_rank, s, &r)) {
-            uint32_t k = ld_w(t->out_index + (size_t)r * ow, ow);
-            uint32_t stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
-            for (; k < stop; k++)
-                n = ss__emit_sig(t, ld_w(t->out_list + (size_t)k * ow, ow), end, ln, out, n);
+    uint32_t round, above = 0, best, s, w, r, k, stop, guard;
+    for (round = 0; round < t->max_outputs; round++) {
+        best = 0xFFFFFFFFu; /* no signature index is that large */
+        for (s = s0, guard = t->max_len + 1u; s != 0 && guard-- && ((w = word(t, s)) & W_MATCH);
+             s = fail_of(t, s, w)) {
+            if (rank_of(t->own_rank, s, &r)) { /* set 15 says, whatever OWN says */
+                stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
+                for (k = ld_w(t->out_index + (size_t)r * ow, ow); k < stop; k++) {
+                    uint32_t sig = ld_w(t->out_list + (size_t)k * ow, ow);
+                    if (sig >= above && sig < best)
+                        best = sig;
+                }
+            }
         }
-        s = fail_of(t, s, w);
-    }
-    for (i = first + 1; i < n; i++) { /* insertion sort: a few entries */
-        ss_match m = out[i];
-        for (j = i; j > first && out[j - 1].sig > m.sig; j--)
-            out[j] = out[j - 1];
-        out[j] = m;
+        if (best == 0xFFFFFFFFu)
+            break;
+        n = ss__emit_sig(t, best, end, ln, out, n);
+        above = best + 1u;
     }
     return n;
 }

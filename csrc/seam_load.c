@@ -218,6 +218,7 @@ int ss_load(ss_table *t, const void *image, size_t size)
         (t->trans_width != 1 && t->trans_width != 2 && t->trans_width != 4) ||
         (t->trans_width < 4 && t->states > (1u << (8u * t->trans_width))) ||
         (t->out_width != 2 && t->out_width != 4) || t->max_len == 0 || t->max_len > 0xFFFFu ||
+        want_max > t->nsigs ||
         ss_ld32(img + 16) != 0 || ss_ld32(img + 48) != 0 || ss_ld32(img + 52) != 0 ||
         ss_ld32(img + 56) != 0 || ss_ld32(img + 60) != 0)
         return SS_ERR_HEADER;
@@ -248,7 +249,7 @@ int ss_load(ss_table *t, const void *image, size_t size)
 #endif
 #ifndef SS_NO_COMPACT
     if (rc == SS_OK && t->layout == SS_LAYOUT_COMPACT) {
-        t->max_outputs = want_max; /* compact: bounded again when emitting */
+        t->max_outputs = want_max; /* compact: no byte emits more */
         rc = ss__check_compact(t, img, nsec);
     }
 #endif
