@@ -9,6 +9,7 @@
  * states and a 64-bit map) select the states that store a failure link,
  * further transitions, or outputs of their own.
  */
+#include <stdint.h>
 #include <string.h>
 
 #include "seam_int.h"
@@ -32,18 +33,36 @@ enum {
 
 #define ld_w ss__ld_w
 
-SS_INLINE unsigned pop64(uint64_t x)
+/* Bits set in x (small cores have no popcount instruction). */
+SS_INLINE uint32_t pop32(uint32_t x)
 {
 #if defined(__POPCNT__)
-    return (unsigned)__builtin_popcountll(x);
+    return (uint32_t)__builtin_popcount(x);
+#else
+    x = x - ((x >> 1) & 0x55555555u);
+    x = (x & 0x33333333u) + ((x >> 2) & 0x33333333u);
+    x = (x + (x >> 4)) & 0x0F0F0F0Fu;
+    return (x * 0x01010101u) >> 24;
 #endif
+}
+
+/* Is s in the rank set?  If so, *r = its index among the members.  A block
+ * is a u32 count and the 64-bit map as two u32 halves, low half first;
+ * 64-bit hosts count it as one word, others half by half (less code, no
+ * 64-bit shifts). */
+#if UINTPTR_MAX > 0xFFFFFFFFu
+SS_INLINE uint32_t pop64(uint64_t x)
+{
+#if defined(__POPCNT__)
+    return (uint32_t)__builtin_popcountll(x);
+#else
     x = x - ((x >> 1) & 0x5555555555555555u);
     x = (x & 0x3333333333333333u) + ((x >> 2) & 0x3333333333333333u);
     x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Fu;
-    return (unsigned)((x * 0x0101010101010101u) >> 56);
+    return (uint32_t)((x * 0x0101010101010101u) >> 56);
+#endif
 }
 
-/* Is s in the rank set?  If so, *r = its index among the members. */
 SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
 {
     const uint8_t *e = set + RANK_ENTRY * (s >> 6);
@@ -54,6 +73,22 @@ SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
     *r = ss_ld32(e) + pop64(map & (((uint64_t)1 << k) - 1u));
     return 1;
 }
+#else
+SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
+{
+    const uint8_t *e = set + RANK_ENTRY * (s >> 6);
+    uint32_t k = s & 63u, before = ss_ld32(e), map = ss_ld32(e + 4);
+    if (k >= 32u) { /* in the high half: the low half's members come first */
+        before += pop32(map);
+        map = ss_ld32(e + 8);
+        k -= 32u;
+    }
+    if (!((map >> k) & 1u))
+        return 0;
+    *r = before + pop32(map & ((1u << k) - 1u));
+    return 1;
+}
+#endif
 
 /* The transition filter: one bit per hash of (state, class); every stored
  * further transition has its bit set, so a clear bit means "none here". */
@@ -73,59 +108,53 @@ SS_INLINE uint32_t word(const ss_table *t, uint32_t s)
     return ss_ld16(t->words + 2u * s);
 }
 
-static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w)
+/* The failure state of s (word w); 0 when it is the start state. */
+#ifdef SS_SMALL
+static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w, uint32_t tw)
+#else
+SS_INLINE uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w, uint32_t tw)
+#endif
 {
     uint32_t r;
     if ((w & W_FAILX) && rank_of(t->fail_rank, s, &r))
-        return ld_w(t->fail_list + (size_t)r * t->trans_width, t->trans_width);
-    return (w & W_FAIL_ROOT) ? ld_w(t->root + (size_t)(w & 0xFFu) * t->trans_width, t->trans_width)
-                             : 0u;
+        return ld_w(t->fail_list + (size_t)r * tw, tw);
+    return (w & W_FAIL_ROOT) ? ld_w(t->root + (size_t)(w & 0xFFu) * tw, tw) : 0u;
 }
 
-/* One byte (class c) from state s, whose word is w.  A valid image needs at
- * most max_len failure steps; a damaged one is cut off there and restarts at
- * the start state, so scanning always ends.  TW is the state id width. */
-#define DEFINE_STEP(NAME, TW)                                                                  \
-    static uint32_t NAME(const ss_table *t, uint32_t s, uint32_t w, uint32_t c)               \
-    {                                                                                          \
-        const uint8_t *words = t->words;                                                       \
-        uint32_t guard = t->max_len, r;                                                        \
-        while (s != 0) {                                                                       \
-            if (!(w & W_EXTRA)) {                                                              \
-                if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)           \
-                    return s + 1u;                                                             \
-            } else if (filter_has(t, s, c)) { /* else no transition of s is on c */             \
-                if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)           \
-                    return s + 1u;                                                             \
-                if (!rank_of(t->extra_rank, s, &r))                                            \
-                    r = 0; /* not reached: the loader checked the rank sets */                 \
-                uint32_t e = ld_w(t->extra_index + (size_t)r * t->out_width, t->out_width);    \
-                uint32_t stop =                                                                \
-                    ld_w(t->extra_index + (size_t)(r + 1u) * t->out_width, t->out_width);      \
-                for (; e < stop; e++) {                                                        \
-                    const uint8_t *x = t->extra_list + (size_t)e * (1u + (TW));                \
-                    if (x[0] == c)                                                             \
-                        return ld_w(x + 1, (TW));                                              \
-                }                                                                              \
-            }                                                                                  \
-            if (!(w & (W_FAILX | W_FAIL_ROOT)) || guard-- == 0)                                \
-                break; /* the failure state is the start state */                            \
-            if ((w & W_FAILX) && rank_of(t->fail_rank, s, &r))                                 \
-                s = ld_w(t->fail_list + (size_t)r * (TW), (TW));                               \
-            else                                                                               \
-                s = ld_w(t->root + (size_t)(w & 0xFFu) * (TW), (TW));                          \
-            w = ss_ld16(words + 2u * s);                                                       \
-        }                                                                                      \
-        return ld_w(t->root + (size_t)c * (TW), (TW));                                         \
+/* One byte (class c) from state s, whose word is w (FORMAT.md, "Scanning one
+ * byte").  Written for few unpredictable branches: the child test is one
+ * comparison, the filter is read for every state and tested with the EXTRA
+ * bit in one branch, and state 0 (a word without flags) needs no test of its
+ * own.  A valid image needs at most max_len failure steps; a damaged one is
+ * cut off there and restarts at the start state, so scanning always ends.
+ * tw is the state id width (a constant where this is inlined).  Word bits
+ * and rank sets need not agree: a state is taken to store a list only when
+ * both say so. */
+SS_INLINE uint32_t step(const ss_table *t, uint32_t s, uint32_t w, uint32_t c, uint32_t tw)
+{
+    const uint8_t *words = t->words;
+    uint32_t guard = t->max_len, r;
+    for (;;) {
+        uint32_t child = (w >> 8) & 1u, next = s + child; /* s itself without CHILD */
+        if (child & ((ss_ld16(words + 2u * next) & 0xFFu) == c))
+            return next;
+        if (((w >> 11) & filter_has(t, s, c)) && rank_of(t->extra_rank, s, &r)) {
+            const uint32_t ow = t->out_width;
+            uint32_t e = ld_w(t->extra_index + (size_t)r * ow, ow);
+            uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * ow, ow);
+            for (; e < stop; e++) {
+                const uint8_t *x = t->extra_list + (size_t)e * (1u + tw);
+                if (x[0] == c)
+                    return ld_w(x + 1, tw);
+            }
+        }
+        if (!(w & (W_FAILX | W_FAIL_ROOT)) || guard-- == 0)
+            break; /* the failure state is the start state (or a damaged image) */
+        s = fail_of(t, s, w, tw);
+        w = ss_ld16(words + 2u * s);
     }
-
-#ifdef SS_SMALL
-DEFINE_STEP(step_any, t->trans_width)
-#else
-DEFINE_STEP(step1, 1u)
-DEFINE_STEP(step2, 2u)
-DEFINE_STEP(step4, 4u)
-#endif
+    return ld_w(t->root + (size_t)c * tw, tw);
+}
 
 /* The matches of state s ending at `end`: its own outputs and those along
  * its failure chain, in signature order.  Each round walks the chain for
@@ -140,7 +169,7 @@ static size_t emit(const ss_table *t, uint32_t s0, uint64_t end, const lane *ln,
     for (round = 0; round < t->max_outputs; round++) {
         best = 0xFFFFFFFFu; /* no signature index is that large */
         for (s = s0, guard = t->max_len + 1u; s != 0 && guard-- && ((w = word(t, s)) & W_MATCH);
-             s = fail_of(t, s, w)) {
+             s = fail_of(t, s, w, t->trans_width)) {
             if (rank_of(t->own_rank, s, &r)) { /* set 15 says, whatever OWN says */
                 stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
                 for (k = ld_w(t->out_index + (size_t)r * ow, ow); k < stop; k++) {
@@ -158,42 +187,54 @@ static size_t emit(const ss_table *t, uint32_t s0, uint64_t end, const lane *ln,
     return n;
 }
 
-#define DEFINE_SCAN(NAME, STEP)                                                                \
-    static size_t NAME(const ss_table *t, lane *ln, const uint8_t *p, size_t len,             \
-                       ss_match *out, size_t cap, size_t *nout)                                \
-    {                                                                                          \
-        const uint8_t *cls = t->classes, *words = t->words;                                    \
-        uint32_t s = ln->state, w = ss_ld16(words + 2u * s);                                   \
-        size_t i = 0, n = *nout;                                                               \
-        while (i < len) {                                                                      \
-            uint32_t ns = STEP(t, s, w, cls[p[i]]), nw = ss_ld16(words + 2u * ns);             \
-            if (nw & W_MATCH) {                                                                \
-                if (n + t->max_outputs > cap)                                                  \
-                    break;                                                                     \
-                n = emit(t, ns, ln->offset + i + 1u, ln, out, n);                              \
-            }                                                                                  \
-            s = ns;                                                                            \
-            w = nw;                                                                            \
-            i++;                                                                               \
-        }                                                                                      \
-        ln->state = s;                                                                         \
-        ln->offset += i;                                                                       \
-        *nout = n;                                                                             \
-        return i;                                                                              \
+/* Scan p[0..len) from the lane's state; stop early when out[] could not
+ * take the next match state's outputs.  Returns bytes consumed. */
+SS_INLINE size_t scan(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout, uint32_t tw)
+{
+    const uint8_t *cls = t->classes, *words = t->words, *q = p, *const stop = p + len;
+    uint32_t s = ln->state, w = ss_ld16(words + 2u * s);
+    size_t n = *nout;
+    for (; q != stop; q++) {
+        uint32_t ns = step(t, s, w, cls[*q], tw), nw = ss_ld16(words + 2u * ns);
+        if (nw & W_MATCH) {
+            if (n + t->max_outputs > cap)
+                break;
+            n = emit(t, ns, ln->offset + (size_t)(q - p) + 1u, ln, out, n);
+        }
+        s = ns;
+        w = nw;
     }
+    ln->state = s;
+    ln->offset += (size_t)(q - p);
+    *nout = n;
+    return (size_t)(q - p);
+}
 
 #ifdef SS_SMALL
-DEFINE_SCAN(scan_any, step_any)
-
 size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
                         ss_match *out, size_t cap, size_t *nout)
 {
-    return scan_any(t, ln, p, len, out, cap, nout);
+    return scan(t, ln, p, len, out, cap, nout, t->trans_width);
 }
 #else
-DEFINE_SCAN(scan_w1, step1)
-DEFINE_SCAN(scan_w2, step2)
-DEFINE_SCAN(scan_w4, step4)
+static size_t scan_w1(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout)
+{
+    return scan(t, ln, p, len, out, cap, nout, 1u);
+}
+
+static size_t scan_w2(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout)
+{
+    return scan(t, ln, p, len, out, cap, nout, 2u);
+}
+
+static size_t scan_w4(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout)
+{
+    return scan(t, ln, p, len, out, cap, nout, 4u);
+}
 
 size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
                         ss_match *out, size_t cap, size_t *nout)
@@ -221,7 +262,7 @@ static long check_rank(const uint8_t *set, uint32_t size, uint32_t states)
         uint32_t valid = states - 64u * b;
         if (ss_ld32(e) != count || (valid < 64u && (map >> valid) != 0))
             return -1;
-        count += pop64(map);
+        count += pop32((uint32_t)map) + pop32((uint32_t)(map >> 32));
     }
     return (long)count;
 }
