@@ -156,17 +156,17 @@ def seed_inputs() -> dict[str, bytes]:
         bad_class = bytearray(lab)
         bad_class[_section_offset(lab, SEC_CLASSES) + 200] = 0xFF
         seeds[f"{layout}-damaged-class-fixcrc.bin"] = fuzz_input(bytes(bad_class), LAB_STREAM, FIX_CRC)
-        bad_sections = bytearray(lab)
-        struct.pack_into("<H", bad_sections, 38, 65)
+        bad_sections = bytearray(lab)  # a directory running past the image
+        struct.pack_into("<H", bad_sections, 38, (len(lab) - 64) // 12 + 1)
         seeds[f"{layout}-damaged-sections.bin"] = fuzz_input(_with_crc(bad_sections), LAB_STREAM)
         huge_max = bytearray(lab)  # callers size out[] by max_outputs: at most nsigs
         struct.pack_into("<I", huge_max, 40, 0x7FFFFFFF)
         seeds[f"{layout}-damaged-max-outputs-fixcrc.bin"] = fuzz_input(bytes(huge_max), LAB_STREAM,
                                                                        FIX_CRC)
-    # Accepted by ss_load though not what the compiler writes: a max_outputs
-    # below a state's outputs, and one signature twice along a failure chain.
-    # The runtime still reports each once, in order, at most max_outputs per
-    # byte (both once broke the target's batch and order checks).
+    # Accepted by ss_load though not well-formed (the host refuses them): a
+    # max_outputs below a state's outputs, and one signature twice along a
+    # failure chain.  The runtime still reports each once, in order, at most
+    # max_outputs per byte (both once broke the target's batch and order checks).
     lab = seamscan.compile(signature_set(LAB_SIGNATURES, name="lab"), layout="compact").to_bytes()
     low_max = bytearray(lab)
     struct.pack_into("<I", low_max, 40, struct.unpack_from("<I", lab, 40)[0] - 1)
