@@ -41,6 +41,10 @@
  *     table written here from FORMAT.md;
  *   - ss_scan_batch gives each slot the matches ss_scan gives the same pieces.
  *
+ * Every one of these must hold for each image ss_load accepts, well-formed or
+ * not (FORMAT.md, "Loading": the host refuses ill-formed images, a device
+ * need not), so the target checks nothing the loader leaves to the host.
+ *
  * Build: `make -C csrc OUT=DIR fuzz-seam` (clang, libFuzzer, ASan, UBSan), or
  * `make -C csrc OUT=DIR fuzz-seam-replay`: the same checks under any C
  * compiler with ASan/UBSan, a main() that runs each file named on its command

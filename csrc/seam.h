@@ -41,7 +41,7 @@ extern "C" {
 #define SS_ERR_VERSION -3   /* format version not supported by this runtime */
 #define SS_ERR_LAYOUT -4    /* layout id not supported by this runtime */
 #define SS_ERR_CRC -5       /* CRC-32 mismatch: the image is damaged */
-#define SS_ERR_SECTION -6   /* a section is missing, overlaps, or lies outside the image */
+#define SS_ERR_SECTION -6   /* a section is missing, lies outside the image, or has the wrong size */
 #define SS_ERR_HEADER -7    /* a header field is out of range */
 #define SS_ERR_CLASSES -8   /* a byte class >= the class count */
 #define SS_ERR_TRANS -9     /* a transition names a state that does not exist */
@@ -82,7 +82,7 @@ typedef struct {
     uint32_t stride;
     uint32_t trans_width;
     uint32_t out_width;
-    uint32_t max_outputs; /* most outputs of any one state (verified at load) */
+    uint32_t max_outputs; /* most outputs of any one state, <= nsigs: no byte yields more */
     uint32_t max_len;
     uint32_t nports;
     uint32_t filter_log2; /* compact: bits in the transition filter, log2 */
@@ -116,7 +116,10 @@ typedef struct {
 } ss_match;
 
 /* Validate an image and fill *t.  Every index the scanner will follow is
- * checked here, so scanning a loaded table never reads outside the image. */
+ * checked here, so scanning a loaded table never reads outside the image and
+ * always ends (FORMAT.md, "Loading": the rules every runtime enforces; the
+ * host tool also refuses images that are not well-formed).  On failure
+ * t->states is 0, and scanning with t does nothing. */
 int ss_load(ss_table *t, const void *image, size_t size);
 const char *ss_strerror(int code);
 uint32_t ss_crc32(const void *data, size_t len);

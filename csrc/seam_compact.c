@@ -9,6 +9,8 @@
  * states and a 64-bit map) select the states that store a failure link,
  * further transitions, or outputs of their own.
  */
+#include <stddef.h>
+#include <stdint.h>
 #include <string.h>
 
 #include "seam_int.h"
@@ -27,23 +29,27 @@ enum {
 #define W_EXTRA 0x800u     /* s is in the transition rank set */
 #define W_FAILX 0x1000u    /* s is in the failure rank set (a stored link) */
 #define W_OWN 0x2000u      /* s is in the output rank set */
-#define W_ALL 0x3FFFu
 #define RANK_ENTRY 12u     /* u32 count before the block, u64 map */
 
 #define ld_w ss__ld_w
 
-SS_INLINE unsigned pop64(uint64_t x)
+/* Is s in the rank set?  If so, *r = its index among the members.  A block
+ * is a u32 count and the 64-bit map as two u32 halves, low half first;
+ * 64-bit hosts count it as one word, others half by half (less code, no
+ * 64-bit shifts). */
+#if UINTPTR_MAX > 0xFFFFFFFFu
+SS_INLINE uint32_t pop64(uint64_t x)
 {
 #if defined(__POPCNT__)
-    return (unsigned)__builtin_popcountll(x);
-#endif
+    return (uint32_t)__builtin_popcountll(x);
+#else
     x = x - ((x >> 1) & 0x5555555555555555u);
     x = (x & 0x3333333333333333u) + ((x >> 2) & 0x3333333333333333u);
     x = (x + (x >> 4)) & 0x0F0F0F0F0F0F0F0Fu;
-    return (unsigned)((x * 0x0101010101010101u) >> 56);
+    return (uint32_t)((x * 0x0101010101010101u) >> 56);
+#endif
 }
 
-/* Is s in the rank set?  If so, *r = its index among the members. */
 SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
 {
     const uint8_t *e = set + RANK_ENTRY * (s >> 6);
@@ -54,6 +60,22 @@ SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
     *r = ss_ld32(e) + pop64(map & (((uint64_t)1 << k) - 1u));
     return 1;
 }
+#else
+SS_INLINE int rank_of(const uint8_t *set, uint32_t s, uint32_t *r)
+{
+    const uint8_t *e = set + RANK_ENTRY * (s >> 6);
+    uint32_t k = s & 63u, before = ss_ld32(e), map = ss_ld32(e + 4);
+    if (k >= 32u) { /* in the high half: the low half's members come first */
+        before += ss__pop32(map);
+        map = ss_ld32(e + 8);
+        k -= 32u;
+    }
+    if (!((map >> k) & 1u))
+        return 0;
+    *r = before + ss__pop32(map & ((1u << k) - 1u));
+    return 1;
+}
+#endif
 
 /* The transition filter: one bit per hash of (state, class); every stored
  * further transition has its bit set, so a clear bit means "none here". */
@@ -73,125 +95,133 @@ SS_INLINE uint32_t word(const ss_table *t, uint32_t s)
     return ss_ld16(t->words + 2u * s);
 }
 
-static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w)
+/* The failure state of s (word w); 0 when it is the start state. */
+#ifdef SS_SMALL
+static uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w, uint32_t tw)
+#else
+SS_INLINE uint32_t fail_of(const ss_table *t, uint32_t s, uint32_t w, uint32_t tw)
+#endif
 {
     uint32_t r;
     if ((w & W_FAILX) && rank_of(t->fail_rank, s, &r))
-        return ld_w(t->fail_list + (size_t)r * t->trans_width, t->trans_width);
-    return (w & W_FAIL_ROOT) ? ld_w(t->root + (size_t)(w & 0xFFu) * t->trans_width, t->trans_width)
-                             : 0u;
+        return ld_w(t->fail_list + (size_t)r * tw, tw);
+    return (w & W_FAIL_ROOT) ? ld_w(t->root + (size_t)(w & 0xFFu) * tw, tw) : 0u;
 }
 
-/* One byte (class c) from state s, whose word is w.  A valid image needs at
- * most max_len failure steps; a damaged one is cut off there and restarts at
- * the start state, so scanning always ends.  TW is the state id width. */
-#define DEFINE_STEP(NAME, TW)                                                                  \
-    static uint32_t NAME(const ss_table *t, uint32_t s, uint32_t w, uint32_t c)               \
-    {                                                                                          \
-        const uint8_t *words = t->words;                                                       \
-        uint32_t guard = t->max_len, r;                                                        \
-        while (s != 0) {                                                                       \
-            if (!(w & W_EXTRA)) {                                                              \
-                if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)           \
-                    return s + 1u;                                                             \
-            } else if (filter_has(t, s, c)) { /* else no transition of s is on c */             \
-                if ((w & W_CHILD) && (ss_ld16(words + 2u * (s + 1u)) & 0xFFu) == c)           \
-                    return s + 1u;                                                             \
-                if (!rank_of(t->extra_rank, s, &r))                                            \
-                    r = 0; /* not reached: the loader checked the rank sets */                 \
-                uint32_t e = ld_w(t->extra_index + (size_t)r * t->out_width, t->out_width);    \
-                uint32_t stop =                                                                \
-                    ld_w(t->extra_index + (size_t)(r + 1u) * t->out_width, t->out_width);      \
-                for (; e < stop; e++) {                                                        \
-                    const uint8_t *x = t->extra_list + (size_t)e * (1u + (TW));                \
-                    if (x[0] == c)                                                             \
-                        return ld_w(x + 1, (TW));                                              \
-                }                                                                              \
-            }                                                                                  \
-            if (!(w & (W_FAILX | W_FAIL_ROOT)) || guard-- == 0)                                \
-                break; /* the failure state is the start state */                            \
-            if ((w & W_FAILX) && rank_of(t->fail_rank, s, &r))                                 \
-                s = ld_w(t->fail_list + (size_t)r * (TW), (TW));                               \
-            else                                                                               \
-                s = ld_w(t->root + (size_t)(w & 0xFFu) * (TW), (TW));                          \
-            w = ss_ld16(words + 2u * s);                                                       \
-        }                                                                                      \
-        return ld_w(t->root + (size_t)c * (TW), (TW));                                         \
+/* One byte (class c) from state s, whose word is w (FORMAT.md, "Scanning one
+ * byte").  Written for few unpredictable branches: the child test is one
+ * comparison, the filter is read for every state and tested with the EXTRA
+ * bit in one branch, and state 0 (a word without flags) needs no test of its
+ * own.  A valid image needs at most max_len failure steps; a damaged one is
+ * cut off there and restarts at the start state, so scanning always ends.
+ * tw is the state id width (a constant where this is inlined).  Word bits
+ * and rank sets need not agree: a state is taken to store a list only when
+ * both say so. */
+SS_INLINE uint32_t step(const ss_table *t, uint32_t s, uint32_t w, uint32_t c, uint32_t tw)
+{
+    const uint8_t *words = t->words;
+    uint32_t guard = t->max_len, r;
+    for (;;) {
+        uint32_t child = (w >> 8) & 1u, next = s + child; /* s itself without CHILD */
+        if (child & ((ss_ld16(words + 2u * next) & 0xFFu) == c))
+            return next;
+        if (((w >> 11) & filter_has(t, s, c)) && rank_of(t->extra_rank, s, &r)) {
+            const uint32_t ow = t->out_width;
+            uint32_t e = ld_w(t->extra_index + (size_t)r * ow, ow);
+            uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * ow, ow);
+            for (; e < stop; e++) {
+                const uint8_t *x = t->extra_list + (size_t)e * (1u + tw);
+                if (x[0] == c)
+                    return ld_w(x + 1, tw);
+            }
+        }
+        if (!(w & (W_FAILX | W_FAIL_ROOT)) || guard-- == 0)
+            break; /* the failure state is the start state (or a damaged image) */
+        s = fail_of(t, s, w, tw);
+        w = ss_ld16(words + 2u * s);
     }
-
-#ifdef SS_SMALL
-DEFINE_STEP(step_any, t->trans_width)
-#else
-DEFINE_STEP(step1, 1u)
-DEFINE_STEP(step2, 2u)
-DEFINE_STEP(step4, 4u)
-#endif
+    return ld_w(t->root + (size_t)c * tw, tw);
+}
 
 /* The matches of state s ending at `end`: its own outputs and those along
- * its failure chain, then put in signature order. */
-static size_t emit(const ss_table *t, uint32_t s, uint64_t end, const lane *ln, ss_match *out,
+ * its failure chain, in signature order.  Each round walks the chain for
+ * the smallest signature above the last one taken, so the order needs no
+ * buffer and no signature comes twice; a valid state has at most
+ * max_outputs, so that many rounds take them all. */
+static size_t emit(const ss_table *t, uint32_t s0, uint64_t end, const lane *ln, ss_match *out,
                    size_t n)
 {
     const uint32_t ow = t->out_width;
-    size_t first = n, i, j;
-    uint32_t guard = t->max_len + 1u, r;
-    while (s != 0 && guard--) {
-        uint32_t w = word(t, s);
-        if (!(w & W_MATCH))
-            break;
-        if ((w & W_OWN) && rank_of(t->own_rank, s, &r)) {
-            uint32_t k = ld_w(t->out_index + (size_t)r * ow, ow);
-            uint32_t stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
-            for (; k < stop; k++)
-                n = ss__emit_sig(t, ld_w(t->out_list + (size_t)k * ow, ow), end, ln, out, n);
+    uint32_t round, above = 0, best, s, w, r, k, stop, guard;
+    for (round = 0; round < t->max_outputs; round++) {
+        best = 0xFFFFFFFFu; /* no signature index is that large */
+        for (s = s0, guard = t->max_len + 1u; s != 0 && guard-- && ((w = word(t, s)) & W_MATCH);
+             s = fail_of(t, s, w, t->trans_width)) {
+            if (rank_of(t->own_rank, s, &r)) { /* set 15 says, whatever OWN says */
+                stop = ld_w(t->out_index + (size_t)(r + 1u) * ow, ow);
+                for (k = ld_w(t->out_index + (size_t)r * ow, ow); k < stop; k++) {
+                    uint32_t sig = ld_w(t->out_list + (size_t)k * ow, ow);
+                    if (sig >= above && sig < best)
+                        best = sig;
+                }
+            }
         }
-        s = fail_of(t, s, w);
-    }
-    for (i = first + 1; i < n; i++) { /* insertion sort: a few entries */
-        ss_match m = out[i];
-        for (j = i; j > first && out[j - 1].sig > m.sig; j--)
-            out[j] = out[j - 1];
-        out[j] = m;
+        if (best == 0xFFFFFFFFu)
+            break;
+        n = ss__emit_sig(t, best, end, ln, out, n);
+        above = best + 1u;
     }
     return n;
 }
 
-#define DEFINE_SCAN(NAME, STEP)                                                                \
-    static size_t NAME(const ss_table *t, lane *ln, const uint8_t *p, size_t len,             \
-                       ss_match *out, size_t cap, size_t *nout)                                \
-    {                                                                                          \
-        const uint8_t *cls = t->classes, *words = t->words;                                    \
-        uint32_t s = ln->state, w = ss_ld16(words + 2u * s);                                   \
-        size_t i = 0, n = *nout;                                                               \
-        while (i < len) {                                                                      \
-            uint32_t ns = STEP(t, s, w, cls[p[i]]), nw = ss_ld16(words + 2u * ns);             \
-            if (nw & W_MATCH) {                                                                \
-                if (n + t->max_outputs > cap)                                                  \
-                    break;                                                                     \
-                n = emit(t, ns, ln->offset + i + 1u, ln, out, n);                              \
-            }                                                                                  \
-            s = ns;                                                                            \
-            w = nw;                                                                            \
-            i++;                                                                               \
-        }                                                                                      \
-        ln->state = s;                                                                         \
-        ln->offset += i;                                                                       \
-        *nout = n;                                                                             \
-        return i;                                                                              \
+/* Scan p[0..len) from the lane's state; stop early when out[] could not
+ * take the next match state's outputs.  Returns bytes consumed. */
+SS_INLINE size_t scan(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout, uint32_t tw)
+{
+    const uint8_t *cls = t->classes, *words = t->words, *q = p, *const stop = p + len;
+    uint32_t s = ln->state, w = ss_ld16(words + 2u * s);
+    size_t n = *nout;
+    for (; q != stop; q++) {
+        uint32_t ns = step(t, s, w, cls[*q], tw), nw = ss_ld16(words + 2u * ns);
+        if (nw & W_MATCH) {
+            if (n + t->max_outputs > cap)
+                break;
+            n = emit(t, ns, ln->offset + (size_t)(q - p) + 1u, ln, out, n);
+        }
+        s = ns;
+        w = nw;
     }
+    ln->state = s;
+    ln->offset += (size_t)(q - p);
+    *nout = n;
+    return (size_t)(q - p);
+}
 
 #ifdef SS_SMALL
-DEFINE_SCAN(scan_any, step_any)
-
 size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
                         ss_match *out, size_t cap, size_t *nout)
 {
-    return scan_any(t, ln, p, len, out, cap, nout);
+    return scan(t, ln, p, len, out, cap, nout, t->trans_width);
 }
 #else
-DEFINE_SCAN(scan_w1, step1)
-DEFINE_SCAN(scan_w2, step2)
-DEFINE_SCAN(scan_w4, step4)
+static size_t scan_w1(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout)
+{
+    return scan(t, ln, p, len, out, cap, nout, 1u);
+}
+
+static size_t scan_w2(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout)
+{
+    return scan(t, ln, p, len, out, cap, nout, 2u);
+}
+
+static size_t scan_w4(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
+                      size_t cap, size_t *nout)
+{
+    return scan(t, ln, p, len, out, cap, nout, 4u);
+}
 
 size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t len,
                         ss_match *out, size_t cap, size_t *nout)
@@ -206,126 +236,50 @@ size_t ss__scan_compact(const ss_table *t, lane *ln, const uint8_t *p, size_t le
 
 /* ---- loading ---------------------------------------------------------- */
 
-/* A rank set over `states` entries: counts consistent, no bit past the end.
- * Returns the member count, or -1. */
-static long check_rank(const uint8_t *set, uint32_t size, uint32_t states)
-{
-    uint32_t blocks = (states + 63u) / 64u, b, count = 0;
-    if ((uint64_t)size != (uint64_t)RANK_ENTRY * blocks)
-        return -1;
-    for (b = 0; b < blocks; b++) {
-        const uint8_t *e = set + RANK_ENTRY * b;
-        uint64_t map = (uint64_t)ss_ld32(e + 4) | ((uint64_t)ss_ld32(e + 8) << 32);
-        uint32_t valid = states - 64u * b;
-        if (ss_ld32(e) != count || (valid < 64u && (map >> valid) != 0))
-            return -1;
-        count += pop64(map);
-    }
-    return (long)count;
-}
+/* ---- loading: the tables that ss__check runs (seam_int.h) -------------- */
 
-/* An index of `members + 1` entries of width w: 0, non-decreasing, ending at `total`. */
-static int check_index(const uint8_t *ix, uint32_t size, uint32_t w, uint64_t members,
-                       uint64_t total)
-{
-    uint64_t k;
-    uint32_t prev = 0;
-    if ((uint64_t)size != (members + 1u) * w || ld_w(ix, w) != 0)
-        return 0;
-    for (k = 1; k <= members; k++) {
-        uint32_t v = ld_w(ix + k * w, w);
-        if (v < prev)
-            return 0;
-        prev = v;
-    }
-    return prev == total;
-}
+/* Sections in the order their sizes become known. */
+static const ss__section_rule compact_sections[] = {
+    {SEC_WORDS, SS__FIELD(words), SS__EXACT, V_TWO, V_STATES, 0},
+    {SEC_FAIL_RANK, SS__FIELD(fail_rank), SS__RANK, V_RANK, V_BLOCKS, V_NFAIL},
+    {SEC_EXTRA_RANK, SS__FIELD(extra_rank), SS__RANK, V_RANK, V_BLOCKS, V_NEXTRA},
+    {SEC_OWN_RANK, SS__FIELD(own_rank), SS__RANK, V_RANK, V_BLOCKS, V_NOWN},
+    {SEC_ROOT, SS__FIELD(root), SS__EXACT, V_TW, V_NCLASSES, 0},
+    {SEC_FAIL_LIST, SS__FIELD(fail_list), SS__EXACT, V_TW, V_NFAIL, 0},
+    {SEC_EXTRA_INDEX, SS__FIELD(extra_index), SS__EXACT, V_OW, V_NEXTRA1, 0},
+    {SEC_OUT_INDEX, SS__FIELD(out_index), SS__EXACT, V_OW, V_NOWN1, 0},
+    {SEC_EXTRA_LIST, SS__FIELD(extra_list), SS__SPLIT, V_TW1, 0, V_ENTRIES},
+    {SEC_OUT_LIST, SS__FIELD(out_list), SS__SPLIT, V_OW, 0, V_OUTS},
+    {SEC_EXTRA_FILTER, SS__FIELD(extra_filter), SS__BITS, 0, 0, V_FILTER},
+};
 
-int ss__check_compact(ss_table *t, const uint8_t *img, uint32_t nsec)
+/* What the scanner indexes with, below what it indexes. */
+static const ss__bound_rule compact_bounds[] = {
+    {SS__FIELD(root), 0, V_NCLASSES, V_TW, V_TW, V_STATES, -SS_ERR_TRANS},
+    {SS__FIELD(words), 0, V_STATES, V_TWO, V_ONE, V_NCLASSES, -SS_ERR_TRANS}, /* class in */
+    {SS__FIELD(fail_list), 0, V_NFAIL, V_TW, V_TW, V_STATES, -SS_ERR_TRANS},
+    {SS__FIELD(extra_list), 1, V_ENTRIES, V_TW1, V_TW, V_STATES, -SS_ERR_TRANS},
+    {SS__FIELD(extra_index), 0, V_NEXTRA1, V_OW, V_OW, V_ENTRIES1, -SS_ERR_TRANS},
+    {SS__FIELD(out_index), 0, V_NOWN1, V_OW, V_OW, V_OUTS1, -SS_ERR_OUTPUTS},
+    {SS__FIELD(out_list), 0, V_OUTS, V_OW, V_OW, V_NSIGS, -SS_ERR_OUTPUTS},
+};
+static const ss__rules compact_rules = {compact_sections, compact_bounds, 11, 7};
+
+/* What the compact scanner reads, bounded (FORMAT.md, "Loading"): sizes from
+ * the header and the rank sets' counts, every state id below `states`, every
+ * class the scanner indexes by below `nclasses`, every list index within its
+ * list, every signature below `nsigs`, a power-of-two filter, and no CHILD
+ * on the last state. */
+int ss__check_compact(ss_table *t, uint32_t *v)
 {
-    uint32_t sz[8], fsize, s, c, k, tw = t->trans_width, ow = t->out_width;
-    long nfail, nextra, nown;
-    uint64_t entries, outs;
-    t->words = ss__section(img, nsec, SEC_WORDS, &sz[0]);
-    t->root = ss__section(img, nsec, SEC_ROOT, &sz[1]);
-    t->fail_rank = ss__section(img, nsec, SEC_FAIL_RANK, &sz[2]);
-    t->fail_list = ss__section(img, nsec, SEC_FAIL_LIST, &sz[3]);
-    t->extra_rank = ss__section(img, nsec, SEC_EXTRA_RANK, &sz[4]);
-    t->extra_index = ss__section(img, nsec, SEC_EXTRA_INDEX, &sz[5]);
-    t->extra_list = ss__section(img, nsec, SEC_EXTRA_LIST, &sz[6]);
-    t->own_rank = ss__section(img, nsec, SEC_OWN_RANK, &sz[7]);
-    t->extra_filter = ss__section(img, nsec, SEC_EXTRA_FILTER, &fsize);
-    for (t->filter_log2 = 6; t->filter_log2 < 31u && (1u << t->filter_log2) < 8u * fsize;)
-        t->filter_log2++;
-    if (!t->extra_filter || fsize < 8u || (1u << t->filter_log2) != 8u * fsize)
-        return SS_ERR_SECTION; /* a power of two of at least 64 bits */
-    if (!t->words || !t->root || !t->fail_rank || !t->fail_list || !t->extra_rank ||
-        !t->extra_index || !t->extra_list || !t->own_rank || t->first_match != t->states ||
-        (uint64_t)sz[0] != 2u * (uint64_t)t->states ||
-        (uint64_t)sz[1] != (uint64_t)tw * t->nclasses)
-        return SS_ERR_SECTION;
-    nfail = check_rank(t->fail_rank, sz[2], t->states);
-    nextra = check_rank(t->extra_rank, sz[4], t->states);
-    nown = check_rank(t->own_rank, sz[7], t->states);
-    if (nfail < 0 || nextra < 0 || nown < 0 || (uint64_t)sz[3] != (uint64_t)nfail * tw ||
-        sz[6] % (1u + tw) != 0)
-        return SS_ERR_SECTION;
-    for (c = 0; c < t->nclasses; c++)
-        if (ld_w(t->root + (size_t)c * tw, tw) >= t->states)
-            return SS_ERR_TRANS;
-    for (s = 0; s < t->states; s++) {
-        uint32_t w = word(t, s), r;
-        if ((w & 0xFFu) >= t->nclasses || (w & ~W_ALL) != 0 ||
-            ((w & W_CHILD) && s + 1u >= t->states) ||
-            !(w & W_FAILX) != !rank_of(t->fail_rank, s, &r) ||
-            !(w & W_EXTRA) != !rank_of(t->extra_rank, s, &r) ||
-            !(w & W_OWN) != !rank_of(t->own_rank, s, &r))
-            return SS_ERR_TRANS;
-    }
-    for (k = 0; k < (uint32_t)nfail; k++)
-        if (ld_w(t->fail_list + (size_t)k * tw, tw) >= t->states)
-            return SS_ERR_TRANS;
-    entries = sz[6] / (1u + tw);
-    if (!check_index(t->extra_index, sz[5], ow, (uint64_t)nextra, entries))
-        return SS_ERR_SECTION;
-    for (k = 0; k < entries; k++) {
-        const uint8_t *x = t->extra_list + (size_t)k * (1u + tw);
-        if (x[0] >= t->nclasses || ld_w(x + 1, tw) >= t->states)
-            return SS_ERR_TRANS;
-    }
-    for (s = 0; s < t->states; s++) { /* every transition of a member passes the filter */
-        uint32_t w = word(t, s), r;
-        if ((w & W_EXTRA) && (w & W_CHILD) && !filter_has(t, s, word(t, s + 1u) & 0xFFu))
-            return SS_ERR_TRANS;
-        if ((w & W_EXTRA) && rank_of(t->extra_rank, s, &r)) {
-            uint32_t e = ld_w(t->extra_index + (size_t)r * ow, ow);
-            uint32_t stop = ld_w(t->extra_index + (size_t)(r + 1u) * ow, ow);
-            for (; e < stop; e++)
-                if (!filter_has(t, s, t->extra_list[(size_t)e * (1u + tw)]))
-                    return SS_ERR_TRANS;
-        }
-    }
-    {
-        uint32_t s_oidx, s_olist;
-        ss__section(img, nsec, SEC_OUT_INDEX, &s_oidx);
-        ss__section(img, nsec, SEC_OUT_LIST, &s_olist);
-        if (s_olist % ow != 0)
-            return SS_ERR_SECTION;
-        outs = s_olist / ow;
-        if (!check_index(t->out_index, s_oidx, ow, (uint64_t)nown, outs))
-            return SS_ERR_OUTPUTS;
-        for (k = 0; k < (uint32_t)nown; k++) {
-            uint32_t e = ld_w(t->out_index + (size_t)k * ow, ow);
-            uint32_t stop = ld_w(t->out_index + (size_t)(k + 1u) * ow, ow), last = 0;
-            for (; e < stop; e++) {
-                uint32_t sig = ld_w(t->out_list + (size_t)e * ow, ow);
-                if (sig >= t->nsigs || (e > ld_w(t->out_index + (size_t)k * ow, ow) && sig <= last))
-                    return SS_ERR_OUTPUTS;
-                last = sig;
-            }
-        }
-    }
-    return SS_OK;
+    int rc;
+    v[V_BLOCKS] = (t->states + 63u) / 64u; /* read once the words' size bounds states */
+    rc = ss__check(t, v, &compact_rules);
+    if (rc != SS_OK)
+        return rc;
+    t->filter_log2 = v[V_FILTER];
+    return (ss_ld16(t->words + 2u * (t->states - 1u)) & W_CHILD) ? SS_ERR_TRANS /* no s + 1 */
+                                                                  : SS_OK;
 }
 
 #else

@@ -2,9 +2,14 @@
  * seam_load.c - validate a table image before anything scans with it.
  *
  * Every field the scanner follows is checked here against the image's own
- * bounds, so a loaded table can never make the scanner read outside it.
- * Arithmetic on sizes is done in 64 bits, so a hostile header cannot wrap.
+ * bounds, so a loaded table can never make the scanner read outside it, and
+ * the header bounds the work per byte (FORMAT.md, "Loading": the safety
+ * rules; the host tool checks the well-formedness rules as well).  Sections
+ * and bounds are checked by one loop over per-layout rule tables
+ * (ss__check); size products are taken in 64 bits, so a hostile header
+ * cannot wrap them.
  */
+#include <stddef.h>
 #include <string.h>
 
 #include "seam.h"
@@ -18,7 +23,6 @@ typedef char ss_match_is_24_bytes[(sizeof(ss_match) == 24) ? 1 : -1];
 
 #define HEADER_SIZE 64u
 #define SECTION_ENTRY 12u
-#define MAX_SECTIONS 64u
 #define SIG_RECORD 20u
 
 enum { SEC_CLASSES = 1, SEC_DENSE, SEC_OUT_INDEX, SEC_OUT_LIST, SEC_SIGS, SEC_PORTS, SEC_NAMES };
@@ -51,7 +55,7 @@ const char *ss_strerror(int code)
     case SS_ERR_VERSION: return "format version not supported by this runtime";
     case SS_ERR_LAYOUT: return "layout not supported by this runtime";
     case SS_ERR_CRC: return "CRC-32 mismatch: the image is damaged";
-    case SS_ERR_SECTION: return "a section is missing, misaligned, duplicated or outside the image";
+    case SS_ERR_SECTION: return "a section is missing, outside the image or of the wrong size";
     case SS_ERR_HEADER: return "a header field is out of range";
     case SS_ERR_CLASSES: return "a byte class is out of range";
     case SS_ERR_TRANS: return "a transition names a state that does not exist";
@@ -61,126 +65,152 @@ const char *ss_strerror(int code)
     }
 }
 
-/* Find section `kind`; its offset and size are already bounds-checked. */
-const uint8_t *ss__section(const uint8_t *img, uint32_t nsec, uint32_t kind, uint32_t *size)
+const uint8_t *ss__section(const ss_table *t, uint32_t nsec, uint32_t kind, uint32_t *size)
 {
-    uint32_t i;
-    for (i = 0; i < nsec; i++) {
-        const uint8_t *e = img + HEADER_SIZE + SECTION_ENTRY * i;
+    const uint8_t *e = t->image + HEADER_SIZE;
+    for (; nsec; nsec--, e += SECTION_ENTRY) {
         if (ss_ld16(e) == kind) {
-            *size = ss_ld32(e + 8);
-            return img + ss_ld32(e + 4);
+            uint32_t off = ss_ld32(e + 4), len = ss_ld32(e + 8);
+            *size = len;
+            return off <= t->size && len <= t->size - off ? t->image + off : NULL;
         }
     }
     *size = 0;
     return NULL;
 }
 
-static int check_sections(const uint8_t *img, uint32_t size, uint32_t nsec)
+uint32_t ss__pop32(uint32_t x)
 {
-    uint64_t first = (uint64_t)HEADER_SIZE + (uint64_t)SECTION_ENTRY * nsec;
-    uint32_t i, j;
-    if (nsec > MAX_SECTIONS || first > size)
-        return SS_ERR_SECTION;
-    for (i = 0; i < nsec; i++) {
-        const uint8_t *e = img + HEADER_SIZE + SECTION_ENTRY * i;
-        uint64_t off = ss_ld32(e + 4), len = ss_ld32(e + 8);
-        if (off < first || off + len > size || (off & 7u) != 0 || ss_ld16(e + 2) != 0)
+    x = x - ((x >> 1) & 0x55555555u);
+    x = (x & 0x33333333u) + ((x >> 2) & 0x33333333u);
+    x = (x + (x >> 4)) & 0x0F0F0F0Fu;
+    return (x * 0x01010101u) >> 24;
+}
+
+#define AT(t, field) (*(const uint8_t **)((char *)(t) + (field)))
+
+int ss__check(ss_table *t, uint32_t *v, const ss__rules *rules)
+{
+    const ss__section_rule *sr = rules->sections;
+    const ss__bound_rule *br = rules->bounds;
+    uint32_t size, count, b, k;
+    const uint8_t *p;
+    for (k = rules->nsections; k; k--, sr++) {
+        const uint8_t *r = *sr;
+        p = AT(t, r[1]) = ss__section(t, v[V_NSEC], r[0], &size);
+        if (p == NULL)
             return SS_ERR_SECTION;
-        for (j = 0; j < i; j++) {
-            const uint8_t *f = img + HEADER_SIZE + SECTION_ENTRY * j;
-            uint64_t foff = ss_ld32(f + 4), flen = ss_ld32(f + 8);
-            if (ss_ld16(f) == ss_ld16(e) || (len && flen && off < foff + flen && foff < off + len))
-                return SS_ERR_SECTION; /* duplicated kind, or overlapping bytes */
+        if (r[2] == SS__SPLIT) {
+            count = size / v[r[3]];
+        } else if (r[2] == SS__BITS) {
+            for (count = 6; count < 31u && (1u << (count - 3u)) < size; count++)
+                ;
+            if ((1u << (count - 3u)) != size)
+                return SS_ERR_SECTION;
+        } else if ((uint64_t)v[r[3]] * v[r[4]] != size) {
+            return SS_ERR_SECTION;
+        } else if (r[2] == SS__RANK) {
+            /* each block's count is the members of all earlier blocks, so
+             * every rank stays below the total */
+            for (count = 0, b = v[V_BLOCKS]; b; b--, p += 12) {
+                if (ss_ld32(p) != count)
+                    return SS_ERR_SECTION;
+                count += ss__pop32(ss_ld32(p + 4)) + ss__pop32(ss_ld32(p + 8));
+            }
+        } else {
+            continue;
         }
+        v[r[5]] = count;
+        v[r[5] + 1u] = count + 1u;
+    }
+    for (k = rules->nbounds; k; k--, br++) {
+        const uint8_t *r = *br;
+        const uint32_t n = v[r[2]], step = v[r[3]], w = v[r[4]], bound = v[r[5]];
+        p = AT(t, r[0]) + r[1];
+        for (b = 0; b < n; b++)
+            if (ss__ld_w(p + (size_t)b * step, w) >= bound)
+                return -(int)r[6];
     }
     return SS_OK;
 }
+
+/* Both layouts: classes, signature records, ports. */
+static const ss__section_rule common_sections[] = {
+    {SEC_CLASSES, SS__FIELD(classes), SS__EXACT, V_ONE, V_256, 0},
+    {SEC_SIGS, SS__FIELD(sigs), SS__EXACT, V_SIG, V_NSIGS, 0},
+    {SEC_PORTS, SS__FIELD(ports), SS__SPLIT, V_TWO, 0, V_NPORTS},
+};
+static const ss__bound_rule common_bounds[] = {
+    {SS__FIELD(classes), 0, V_256, V_ONE, V_ONE, V_NCLASSES, -SS_ERR_CLASSES},
+};
+static const ss__rules common_rules = {common_sections, common_bounds, 3, 1};
 
 #ifndef SS_NO_DENSE
-static int check_dense(const ss_table *t, uint32_t trans_size)
-{
-    uint64_t entries = (uint64_t)t->states * t->stride, k;
-    if (entries * t->trans_width != trans_size)
-        return SS_ERR_SECTION;
-    for (k = 0; k < entries; k++) {
-        const uint8_t *p = t->trans + k * t->trans_width;
-        uint32_t v = t->trans_width == 1 ? p[0] : t->trans_width == 2 ? ss_ld16(p) : ss_ld32(p);
-        if (v >= t->states)
-            return SS_ERR_TRANS;
-    }
-    return SS_OK;
-}
+static const ss__section_rule dense_sections[] = {
+    {SEC_DENSE, SS__FIELD(trans), SS__EXACT, V_TW, V_CELLS, 0},
+    {SEC_OUT_INDEX, SS__FIELD(out_index), SS__EXACT, V_FOUR, V_NMATCH1, 0},
+    {SEC_OUT_LIST, SS__FIELD(out_list), SS__SPLIT, V_OW, 0, V_OUTS},
+};
+static const ss__bound_rule dense_bounds[] = {
+    {SS__FIELD(trans), 0, V_CELLS, V_TW, V_TW, V_STATES, -SS_ERR_TRANS},
+};
+static const ss__rules dense_rules = {dense_sections, dense_bounds, 3, 1};
 
-static int check_outputs(ss_table *t, uint32_t index_size, uint32_t list_size, uint32_t want_max)
+/* Dense: every transition names a state (the tables above), and the output
+ * index and list are checked in full (one u32 index: the scanner's ordered
+ * matches and max_outputs rely on it). */
+static int check_dense(ss_table *t, uint32_t *v, uint32_t want_max)
 {
-    uint64_t nmatch = (uint64_t)t->states - t->first_match;
-    uint64_t entries = list_size / t->out_width, k;
-    uint32_t prev = 0, most = 0;
-    if ((uint64_t)index_size != 4u * (nmatch + 1u) || list_size % t->out_width != 0)
-        return SS_ERR_SECTION;
+    uint32_t nmatch, k, prev = 0, most = 0;
+    uint64_t cells = (uint64_t)t->states * t->stride;
+    int rc;
+    if (t->first_match == 0 || t->first_match > t->states || t->stride < t->nclasses ||
+        cells > 0xFFFFFFFFu)
+        return SS_ERR_HEADER;
+    nmatch = t->states - t->first_match;
+    v[V_CELLS] = (uint32_t)cells;
+    v[V_NMATCH1] = nmatch + 1u;
+    rc = ss__check(t, v, &dense_rules);
+    if (rc != SS_OK)
+        return rc;
     if (ss_ld32(t->out_index) != 0)
         return SS_ERR_OUTPUTS;
     for (k = 1; k <= nmatch; k++) {
-        uint32_t v = ss_ld32(t->out_index + 4u * k);
-        if (v < prev || v > entries)
+        uint32_t stop = ss_ld32(t->out_index + 4u * k), e, last = 0;
+        if (stop < prev || stop > v[V_OUTS])
             return SS_ERR_OUTPUTS;
-        if (v - prev > most)
-            most = v - prev;
-        prev = v;
-    }
-    if (prev != entries || most != want_max)
-        return SS_ERR_OUTPUTS;
-    for (k = 1, prev = 0; k <= nmatch; k++) {
-        uint32_t stop = ss_ld32(t->out_index + 4u * k), e;
-        uint32_t last = 0;
+        if (stop - prev > most)
+            most = stop - prev;
         for (e = prev; e < stop; e++) { /* ascending signature indices < nsigs */
-            const uint8_t *p = t->out_list + (uint64_t)e * t->out_width;
-            uint32_t sig = t->out_width == 2 ? ss_ld16(p) : ss_ld32(p);
+            uint32_t sig = ss__ld_w(t->out_list + (size_t)e * t->out_width, t->out_width);
             if (sig >= t->nsigs || (e > prev && sig <= last))
                 return SS_ERR_OUTPUTS;
             last = sig;
         }
         prev = stop;
     }
-    t->max_outputs = most;
+    if (prev != v[V_OUTS] || most != want_max)
+        return SS_ERR_OUTPUTS;
     return SS_OK;
 }
-
 #endif /* SS_NO_DENSE */
 
-static int check_sigs(const ss_table *t, uint32_t sigs_size, uint32_t ports_size)
-{
-    uint32_t i, longest = 0;
-    if ((uint64_t)sigs_size != (uint64_t)SIG_RECORD * t->nsigs || (ports_size & 1u) != 0)
-        return SS_ERR_SECTION;
-    for (i = 0; i < t->nsigs; i++) {
-        const uint8_t *r = t->sigs + (size_t)SIG_RECORD * i;
-        uint32_t len = ss_ld16(r + 4);
-        uint64_t nports = ss_ld16(r + 6), first = ss_ld32(r + 8);
-        if (r[0] > SS_SIDE_SERVER || r[1] > SS_TRANSPORT_UDP || r[3] != 0 ||
-            (r[2] & ~(SS_SIG_HAS_WINDOW | SS_SIG_DATAGRAM)) != 0 || len == 0 ||
-            first + nports > t->nports)
-            return SS_ERR_SIGS;
-        if ((r[2] & SS_SIG_HAS_WINDOW) ? ss_ld32(r + 12) >= ss_ld32(r + 16)
-                                       : (ss_ld32(r + 12) != 0 || ss_ld32(r + 16) != 0xFFFFFFFFu))
-            return SS_ERR_SIGS;
-        if (len > longest)
-            longest = len;
-    }
-    return longest == t->max_len ? SS_OK : SS_ERR_SIGS;
-}
-
+/* What ss_load checks is what scanning needs (FORMAT.md, "Loading"): every
+ * offset, count and index the scanner follows lies inside the image, and the
+ * header bounds the work per byte.  Consistency rules that no read depends
+ * on (reserved fields, alignment, overlaps, record fields that are only
+ * compared) are the host tool's: seamscan refuses such images before export. */
 int ss_load(ss_table *t, const void *image, size_t size)
 {
     const uint8_t *img = (const uint8_t *)image;
-    uint32_t isize, nsec, want_max, s_cls, s_trans, s_oidx, s_olist, s_sigs, s_ports, b;
+    uint32_t isize, nsec, i, longest = 0, v[V_COUNT];
+    const uint8_t *r;
     int rc;
 
     memset(t, 0, sizeof *t);
     if (img == NULL || size < HEADER_SIZE)
         return SS_ERR_SHORT;
-    if (memcmp(img, "SEAM", 4) != 0)
+    if (ss_ld32(img) != 0x4D414553u) /* "SEAM" */
         return SS_ERR_MAGIC;
     if (ss_ld16(img + 4) != SS_FORMAT_VERSION)
         return SS_ERR_VERSION;
@@ -203,60 +233,51 @@ int ss_load(ss_table *t, const void *image, size_t size)
 
     t->image = img;
     t->size = isize;
-    t->states = ss_ld32(img + 20);
+    v[V_STATES] = t->states = ss_ld32(img + 20);
     t->first_match = ss_ld32(img + 24);
-    t->nsigs = ss_ld32(img + 28);
-    t->nclasses = ss_ld16(img + 32);
+    v[V_NSIGS] = t->nsigs = ss_ld32(img + 28);
+    v[V_NCLASSES] = t->nclasses = ss_ld16(img + 32);
     t->stride = ss_ld16(img + 34);
-    t->trans_width = img[36];
-    t->out_width = img[37];
-    nsec = ss_ld16(img + 38);
-    want_max = ss_ld32(img + 40);
+    v[V_TW] = t->trans_width = img[36];
+    v[V_OW] = t->out_width = img[37];
+    v[V_NSEC] = nsec = ss_ld16(img + 38);
+    t->max_outputs = ss_ld32(img + 40);
     t->max_len = ss_ld32(img + 44);
-    if (t->states == 0 || t->first_match == 0 || t->first_match > t->states ||
-        t->nclasses == 0 || t->nclasses > 256 || t->stride < t->nclasses ||
+    v[V_TW1] = t->trans_width + 1u;
+    v[V_ONE] = 1u;
+    v[V_TWO] = 2u;
+    v[V_FOUR] = 4u;
+    v[V_RANK] = 12u;
+    v[V_SIG] = SIG_RECORD;
+    v[V_256] = 256u;
+    if (t->states == 0 || /* nclasses 0 is refused with the classes */
         (t->trans_width != 1 && t->trans_width != 2 && t->trans_width != 4) ||
-        (t->trans_width < 4 && t->states > (1u << (8u * t->trans_width))) ||
-        (t->out_width != 2 && t->out_width != 4) || t->max_len == 0 || t->max_len > 0xFFFFu ||
-        ss_ld32(img + 16) != 0 || ss_ld32(img + 48) != 0 || ss_ld32(img + 52) != 0 ||
-        ss_ld32(img + 56) != 0 || ss_ld32(img + 60) != 0)
-        return SS_ERR_HEADER;
-
-    rc = check_sections(img, isize, nsec);
-    if (rc != SS_OK)
-        return rc;
-    t->classes = ss__section(img, nsec, SEC_CLASSES, &s_cls);
-    t->out_index = ss__section(img, nsec, SEC_OUT_INDEX, &s_oidx);
-    t->out_list = ss__section(img, nsec, SEC_OUT_LIST, &s_olist);
-    t->sigs = ss__section(img, nsec, SEC_SIGS, &s_sigs);
-    t->ports = ss__section(img, nsec, SEC_PORTS, &s_ports);
-    if (!t->classes || !t->out_index || !t->out_list || !t->sigs || !t->ports || s_cls != 256u)
-        return SS_ERR_SECTION;
-    t->nports = s_ports / 2u;
-
-    for (b = 0; b < 256u; b++)
-        if (t->classes[b] >= t->nclasses)
-            return SS_ERR_CLASSES;
-    rc = check_sigs(t, s_sigs, s_ports);
-#ifndef SS_NO_DENSE
-    if (rc == SS_OK && t->layout == SS_LAYOUT_DENSE) {
-        t->trans = ss__section(img, nsec, SEC_DENSE, &s_trans);
-        rc = t->trans ? check_dense(t, s_trans) : SS_ERR_SECTION;
-        if (rc == SS_OK)
-            rc = check_outputs(t, s_oidx, s_olist, want_max);
+        (t->out_width != 2 && t->out_width != 4) || t->max_len > 0xFFFFu ||
+        t->max_outputs > t->nsigs)
+        rc = SS_ERR_HEADER;
+    else if (HEADER_SIZE + SECTION_ENTRY * nsec > isize)
+        rc = SS_ERR_SECTION;
+    else if ((rc = ss__check(t, v, &common_rules)) == SS_OK)
+        t->nports = v[V_NPORTS];
+    for (i = 0, r = t->sigs; rc == SS_OK && i < t->nsigs; i++, r += SIG_RECORD) {
+        uint32_t len = ss_ld16(r + 4), nports = ss_ld16(r + 6), first = ss_ld32(r + 8);
+        if (first > t->nports || nports > t->nports - first)
+            rc = SS_ERR_SIGS; /* the port list lies inside the ports section */
+        if (len > longest)
+            longest = len;
     }
+    if (rc == SS_OK && longest != t->max_len)
+        rc = SS_ERR_SIGS; /* max_len bounds the failure steps of one byte */
+#ifndef SS_NO_DENSE
+    if (rc == SS_OK && t->layout == SS_LAYOUT_DENSE)
+        rc = check_dense(t, v, t->max_outputs);
 #endif
 #ifndef SS_NO_COMPACT
-    if (rc == SS_OK && t->layout == SS_LAYOUT_COMPACT) {
-        t->max_outputs = want_max; /* compact: bounded again when emitting */
-        rc = ss__check_compact(t, img, nsec);
-    }
+    if (rc == SS_OK && t->layout == SS_LAYOUT_COMPACT)
+        rc = ss__check_compact(t, v); /* max_outputs: emission per byte stops there */
 #endif
-    (void)s_trans;
-    (void)s_oidx;
-    (void)s_olist;
     if (rc != SS_OK)
-        memset(t, 0, sizeof *t);
+        t->states = 0; /* not loaded: ss_scan and ss_scan_batch scan nothing */
     return rc;
 }
 

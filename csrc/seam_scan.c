@@ -158,6 +158,9 @@ DEFINE_SCANL(scanl_w4, LOAD4, 4u)
 static size_t scan1(const ss_table *t, lane *ln, const uint8_t *p, size_t len, ss_match *out,
                     size_t cap, size_t *nout)
 {
+#if defined(SS_NO_DENSE) && !defined(SS_NO_COMPACT)
+    return ss__scan_compact(t, ln, p, len, out, cap, nout); /* the one layout ss_load takes */
+#else
 #ifndef SS_NO_COMPACT
     if (t->layout == SS_LAYOUT_COMPACT)
         return ss__scan_compact(t, ln, p, len, out, cap, nout);
@@ -173,6 +176,7 @@ static size_t scan1(const ss_table *t, lane *ln, const uint8_t *p, size_t len, s
     if (t->trans_width == 2u)
         return scan1_w2(t, ln, p, len, out, cap, nout);
     return scan1_w4(t, ln, p, len, out, cap, nout);
+#endif
 #endif
 }
 

@@ -17,7 +17,12 @@ the images the host scans with.  Checked, on each target and each layout of
   sizes: identical match lists on host engine, host harness and target;
   pyahocorasick agrees on the plain signatures;
 * the loader's verdict (accepted, or the refusal code) on intact and
-  randomly damaged images is the same on the target as on the host.
+  randomly damaged images is the same on the target as on the host;
+* the runtime as a device builds it (``-DSS_SMALL`` and one layout:
+  ``-DSS_NO_DENSE`` or ``-DSS_NO_COMPACT``, the code ``make sizes-m4``
+  measures), on the host and on armhf: the vector table of its layout gives
+  the same matches, and damaged images the same verdicts, as the full build;
+  images of the layout it leaves out are refused as such.
 
 Many harness runs are batched into one shell script per target, so qemu's
 start-up (some 20 ms) is paid without Python in between.  Tests skip with
@@ -28,6 +33,7 @@ from __future__ import annotations
 
 import os
 import random
+import re
 import shlex
 import shutil
 import struct
@@ -78,8 +84,8 @@ def _run(cmd, *, timeout=600) -> subprocess.CompletedProcess:
                           errors="replace")
 
 
-def _make(out: Path, target: str) -> subprocess.CompletedProcess:
-    return _run(["make", "-s", "-C", CSRC, f"OUT={out}", target])
+def _make(out: Path, target: str, defs: str = "") -> subprocess.CompletedProcess:
+    return _run(["make", "-s", "-C", CSRC, f"OUT={out}", f"DEFS={defs}", target])
 
 
 @dataclass
@@ -199,12 +205,11 @@ def test_crc32_on_target(target, tmp_path):
 # --- (a) the vector table ---------------------------------------------------------
 
 
-@pytest.fixture(scope="module", params=LAYOUTS)
-def vector_files(request, tmp_path_factory, host):
-    """Every vector's image (this layout) and haystack on disk, with the
-    expected matches and the host harness's results for CHUNKS."""
-    layout = request.param
-    where = tmp_path_factory.mktemp(f"vectors-{layout}")
+def _write_vectors(where: Path, layout: str):
+    """Every vector's image (this layout) and haystack on disk: (harness
+    arguments per run, (vector, expected matches) per run), runs for CHUNKS.
+    The host engine's matches on each image are checked against the
+    hand-worked list on the way."""
     cases, expected = {}, {}
     for k, vector in enumerate(VECTORS):
         table = seamscan.compile(signature_set(vector.sigs, name=vector.name), layout=layout)
@@ -212,12 +217,21 @@ def vector_files(request, tmp_path_factory, host):
         image.write_bytes(table.to_bytes())
         stream.write_bytes(vector.haystack)
         want = [(table.ids.index(sig_id), start, end) for sig_id, start, end in vector.expected]
-        # The host engine on the same image: equal to the hand-worked list.
         assert _indexed(table, table.scan(vector.haystack)) == want, vector.name
         for chunk in CHUNKS:
             key = f"{k}/{chunk}"
             cases[key] = [image, stream] + ([chunk] if chunk else [])
             expected[key] = (vector, want)
+    return cases, expected
+
+
+@pytest.fixture(scope="module", params=LAYOUTS)
+def vector_files(request, tmp_path_factory, host):
+    """Every vector's image (this layout) and haystack on disk, with the
+    expected matches and the host harness's results for CHUNKS."""
+    layout = request.param
+    where = tmp_path_factory.mktemp(f"vectors-{layout}")
+    cases, expected = _write_vectors(where, layout)
     host_results = host.run_many(cases, where)
     for key, (vector, want) in expected.items():
         got = _matches(*host_results[key], f"host {vector.name} chunk {key}", len(vector.haystack))
@@ -426,3 +440,78 @@ def test_loader_verdicts_match_the_host(layout, target, host, tmp_path):
     codes = [int(line.split()[0]) for line in verdicts["host"]]
     assert codes[:len(VECTORS)] == [0] * len(VECTORS)
     assert len(set(codes)) >= 5  # the damage reaches several of the loader's checks
+
+
+# --- the device builds -----------------------------------------------------------
+
+
+def _error_code(name: str) -> int:
+    """SS_ERR_<name> as csrc/seam.h defines it."""
+    m = re.search(rf"#define SS_ERR_{name} \(?(-\d+)", (CSRC / "seam.h").read_text())
+    assert m, name
+    return int(m.group(1))
+
+
+# (layout kept, the other one, -D options): what `make sizes-m4` measures.
+DEVICE_BUILDS = [("compact", "dense", "-DSS_SMALL -DSS_NO_DENSE"),
+                 ("dense", "compact", "-DSS_SMALL -DSS_NO_COMPACT")]
+
+
+@pytest.fixture(scope="module", params=DEVICE_BUILDS, ids=[b[0] for b in DEVICE_BUILDS])
+def device_build(request, tmp_path_factory):
+    """The harness built as a device builds the runtime: on the host, and on
+    armhf under qemu when the cross tools are there."""
+    layout, other, defs = request.param
+    out = tmp_path_factory.mktemp(f"device-{layout}")
+    r = _make(out, "seamrun", defs)
+    assert r.returncode == 0, f"building the {layout} device harness failed:\n{r.stdout}{r.stderr}"
+    harnesses = [Harness(f"host-{layout}-device", [str(out / "seamrun")])]
+    arm = TARGETS[0]
+    if shutil.which(arm.compiler) and shutil.which(arm.qemu):
+        r = _make(out, arm.make_target, defs)
+        if r.returncode == 0:
+            harnesses.append(Harness(f"armhf-{layout}-device", [arm.qemu, str(out / arm.make_target)]))
+        elif not any(mark in r.stderr for mark in _MISSING_LIBC):
+            raise AssertionError(f"make {arm.make_target} {defs} failed:\n{r.stdout}{r.stderr}")
+    return layout, other, harnesses
+
+
+def test_device_build_scans_the_vectors(device_build, tmp_path):
+    layout, _other, harnesses = device_build
+    cases, expected = _write_vectors(tmp_path, layout)
+    for harness in harnesses:
+        results = harness.run_many(cases, tmp_path)
+        wrong = []
+        for key, (vector, want) in expected.items():
+            got = _matches(*results[key], f"{harness.name} {vector.name} chunk {key}",
+                           len(vector.haystack))
+            if got != want:
+                wrong.append(f"{vector.name} ({key}): {_first_difference(got, want)}")
+        assert not wrong, f"{harness.name}: {len(wrong)} of {len(cases)} runs differ:\n" + \
+            "\n".join(wrong[:30])
+
+
+def test_device_build_loader_verdicts(device_build, host, tmp_path):
+    layout, other, harnesses = device_build
+    rng = random.Random(4242)
+    lab = seamscan.compile(signature_set([
+        {"id": "relay", "text": "POST /relay/", "side": "client", "transport": "tcp", "ports": [80, 8080]},
+        {"id": "temp", "text": "temp=", "fold_case": True, "window": [0, 512]},
+        {"id": "lay", "text": "lay"},
+        {"id": "ay", "text": "ay"},
+    ]), layout=layout).to_bytes()
+    blobs = [lab, *_damaged_images(rng, lab, 200)]
+    paths = []
+    for k, blob in enumerate(blobs):
+        paths.append(tmp_path / f"d{k:03d}.seam")
+        paths[-1].write_bytes(blob)
+    left_out = tmp_path / "other-layout.seam"
+    left_out.write_bytes(seamscan.compile(signature_set([{"id": "a", "text": "a"}]), layout=other).to_bytes())
+    status, full = host.run_many({"check": ["--check", *paths]}, tmp_path)["check"]
+    assert status == 0
+    for harness in harnesses:
+        status, lines = harness.run_many({"check": ["--check", *paths, left_out]}, tmp_path)["check"]
+        assert status == 0, f"{harness.name} --check exited {status}:\n" + "\n".join(lines[-10:])
+        assert lines[:-1] == full, harness.name
+        assert lines[-1].split()[0] == str(_error_code("LAYOUT")), lines[-1]
+

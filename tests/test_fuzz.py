@@ -114,6 +114,15 @@ def _section_offset(blob: bytes, kind: int) -> int:
     raise AssertionError(f"no section {kind} in the image")
 
 
+def _section_span(blob: bytes, kind: int) -> tuple[int, int]:
+    (count,) = struct.unpack_from("<H", blob, 38)
+    for i in range(count):
+        entry_kind, _flags, offset, size = struct.unpack_from("<HHII", blob, 64 + 12 * i)
+        if entry_kind == kind:
+            return offset, size
+    raise AssertionError(f"no section {kind} in the image")
+
+
 def _with_crc(blob: bytearray) -> bytes:
     struct.pack_into("<I", blob, 12, zlib.crc32(blob[16:]))
     return bytes(blob)
@@ -147,9 +156,26 @@ def seed_inputs() -> dict[str, bytes]:
         bad_class = bytearray(lab)
         bad_class[_section_offset(lab, SEC_CLASSES) + 200] = 0xFF
         seeds[f"{layout}-damaged-class-fixcrc.bin"] = fuzz_input(bytes(bad_class), LAB_STREAM, FIX_CRC)
-        bad_sections = bytearray(lab)
-        struct.pack_into("<H", bad_sections, 38, 65)
+        bad_sections = bytearray(lab)  # a directory running past the image
+        struct.pack_into("<H", bad_sections, 38, (len(lab) - 64) // 12 + 1)
         seeds[f"{layout}-damaged-sections.bin"] = fuzz_input(_with_crc(bad_sections), LAB_STREAM)
+        huge_max = bytearray(lab)  # callers size out[] by max_outputs: at most nsigs
+        struct.pack_into("<I", huge_max, 40, 0x7FFFFFFF)
+        seeds[f"{layout}-damaged-max-outputs-fixcrc.bin"] = fuzz_input(bytes(huge_max), LAB_STREAM,
+                                                                       FIX_CRC)
+    # Accepted by ss_load though not well-formed (the host refuses them): a
+    # max_outputs below a state's outputs, and one signature twice along a
+    # failure chain.  The runtime still reports each once, in order, at most
+    # max_outputs per byte (both once broke the target's batch and order checks).
+    lab = seamscan.compile(signature_set(LAB_SIGNATURES, name="lab"), layout="compact").to_bytes()
+    low_max = bytearray(lab)
+    struct.pack_into("<I", low_max, 40, struct.unpack_from("<I", lab, 40)[0] - 1)
+    seeds["compact-ill-formed-max-outputs.bin"] = fuzz_input(_with_crc(low_max), LAB_STREAM)
+    same_sig = bytearray(lab)
+    off, size = _section_span(lab, 4)  # the output list: every entry "ay", the last signature
+    for k in range(off, off + size, 2):
+        struct.pack_into("<H", same_sig, k, len(LAB_SIGNATURES) - 1)
+    seeds["compact-ill-formed-outputs-twice.bin"] = fuzz_input(_with_crc(same_sig), LAB_STREAM)
     seeds["short-prefix.bin"] = b"\x10\x00"
     seeds["not-an-image.bin"] = fuzz_input(b"SEAX" + b"\0" * 60, b"abc")
     return seeds
@@ -171,6 +197,8 @@ def expected_codes() -> dict[str, int]:
             codes[name] = ERR["CLASSES"]
         elif "damaged-sections" in name:
             codes[name] = ERR["SECTION"]
+        elif "damaged-max-outputs" in name:
+            codes[name] = ERR["HEADER"]
         else:
             codes[name] = 0
     return codes

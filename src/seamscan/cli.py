@@ -388,7 +388,7 @@ def cmd_inspect(args) -> int:
         return code
     h = table.header
     print(f"{args.table}: valid table image (CRC-32 {h.crc:08x} checked, every index in "
-          f"bounds), format version {h.version}")
+          f"bounds, well-formed), format version {h.version}")
     print(f"  layout {table.layout}, {table.nbytes:,} bytes, {table.states:,} states, "
           f"{table.classes} byte classes, {h.trans_width * 8}-bit state ids")
     print(f"  {len(table)} signatures, longest {h.max_len} bytes, at most {h.max_outputs} "

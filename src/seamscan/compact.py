@@ -247,6 +247,8 @@ class CompactModel:
                                       dtype=image._DTYPES[h.out_width]).astype(np.int64)
         self.ranks = {k: self._unpack_rank(sec[k]) for k in (SEC_FAIL_RANK, SEC_EXTRA_RANK,
                                                             SEC_OWN_RANK)}
+        self.filter = sec[SEC_EXTRA_FILTER]
+        self.filter_log2 = (8 * len(self.filter)).bit_length() - 1
         self.steps = 0
 
     @staticmethod
@@ -266,21 +268,29 @@ class CompactModel:
         w = int(self.words[s])
         return int(self.root[w & 0xFF]) if w & W_FAIL_ROOT_CHILD else 0
 
+    def _filter_has(self, s, c):
+        bit = filter_bit(s, c, self.filter_log2)
+        return self.filter[bit >> 3] >> (bit & 7) & 1
+
     def step(self, s, byte):
+        """One byte, as csrc/FORMAT.md's "Scanning one byte" reads; each state
+        visited is one step, the start state too when the walk falls back to
+        its row."""
         c = self.classes[byte]
         while True:
             self.steps += 1
-            if s == 0:
-                return int(self.root[c])
             w = int(self.words[s])
             if w & W_CHILD and (int(self.words[s + 1]) & 0xFF) == c:
                 return s + 1
-            has, r = self._rank(SEC_EXTRA_RANK, s)
-            if has:
+            if w & W_EXTRA and self._filter_has(s, c):
+                _has, r = self._rank(SEC_EXTRA_RANK, s)
                 for e in range(self.extra_index[r], self.extra_index[r + 1]):
                     off = e * self.entry
                     if self.extra_list[off] == c:
                         return int.from_bytes(self.extra_list[off + 1:off + self.entry], "little")
+            if not w & (W_FAIL_STORED | W_FAIL_ROOT_CHILD):
+                self.steps += s != 0  # the start state's row
+                return int(self.root[c])
             s = self.fail(s)
 
     def outputs(self, s):

@@ -11,7 +11,7 @@ import re
 import struct
 from typing import NamedTuple
 
-from seamscan import compact, compiler, image
+from seamscan import compact, compiler, image, wellformed
 from seamscan._seamcore import ffi, lib
 from seamscan.image import TableError
 
@@ -146,9 +146,12 @@ def costliest_signatures(automaton, sigs, sizes) -> list[tuple[str, int, int]]:
 
 
 class Table:
-    """A loaded, validated table image."""
+    """A loaded, validated table image: accepted by ``ss_load`` (the device
+    loader: safe to scan) and, unless ``well_formed=False``, by the host's
+    well-formedness rules (``seamscan.wellformed``: an image the compiler
+    writes)."""
 
-    def __init__(self, blob: bytes):
+    def __init__(self, blob: bytes, *, well_formed: bool = True):
         self._blob = bytes(blob)
         self._buf = ffi.from_buffer(self._blob)
         self._t = ffi.new("ss_table *")
@@ -156,17 +159,27 @@ class Table:
         if rc != 0:
             raise TableError(f"table image refused: {ffi.string(lib.ss_strerror(rc)).decode()}"
                              f" (code {rc})")
+        if well_formed:
+            wellformed.check(self._blob)
         self.header = image.read_header(self._blob)
-        self.ids, self.labels = image.read_names(self._blob, self.header)
+        try:
+            self.ids, self.labels = image.read_names(self._blob, self.header)
+        except TableError:
+            if well_formed:
+                raise
+            self.ids = [f"#{i + 1}" for i in range(self.header.sigs)]
+            self.labels = [""] * self.header.sigs
         self.lengths = image.signature_lengths(self._blob, self.header)
         self.signatures = None  # the SignatureSet, when compiled here
         self.automaton = None  # the compiler's automaton, when compiled here
         self._cap = max(_BUFFER_MATCHES, 8 * self._t.max_outputs)
 
     @classmethod
-    def from_bytes(cls, blob) -> Table:
-        """Load an image; a damaged one raises :class:`~seamscan.image.TableError`."""
-        return cls(blob)
+    def from_bytes(cls, blob, *, well_formed: bool = True) -> Table:
+        """Load an image; a damaged or ill-formed one raises
+        :class:`~seamscan.image.TableError`.  ``well_formed=False`` skips the
+        host's rules (to scan an image exactly as a device would take it)."""
+        return cls(blob, well_formed=well_formed)
 
     def to_bytes(self) -> bytes:
         return self._blob

@@ -2,7 +2,8 @@
 
 ``csrc/FORMAT.md`` is the contract; this module writes images and reads
 their header and names.  Validation of everything the scanner relies on is
-done by the C loader (``ss_load``), the same code a device runs.
+done by the C loader (``ss_load``), the same code a device runs; the rest of
+the format's rules are checked on the host by ``seamscan.wellformed``.
 """
 
 from __future__ import annotations
@@ -65,7 +66,7 @@ class Header:
     nsections: int
     max_outputs: int
     max_len: int
-    sections: dict[int, tuple[int, int]]  # kind -> (offset, size)
+    sections: dict[int, tuple[int, int]]  # kind -> (offset, size) of its first directory entry
 
     @property
     def layout_name(self) -> str:
@@ -172,7 +173,8 @@ def _assemble(layout: int, sections, **fields) -> bytes:
 
 
 def read_header(image) -> Header:
-    """Parse the header and section directory (no deep validation: ``ss_load`` does that)."""
+    """Parse the header and section directory (no deep validation: ``ss_load`` and
+    ``wellformed`` do that)."""
     image = memoryview(image)
     if len(image) < HEADER_SIZE:
         raise TableError(f"not a table image: {len(image)} bytes, shorter than the {HEADER_SIZE}-byte header")
@@ -185,7 +187,7 @@ def read_header(image) -> Header:
     if end <= len(image):
         for i in range(nsections):
             kind, _flags, off, sz = struct.unpack_from("<HHII", image, HEADER_SIZE + SECTION_ENTRY * i)
-            sections[kind] = (off, sz)
+            sections.setdefault(kind, (off, sz))  # the first entry of a kind counts, as in ss_load
     return Header(version, layout, size, crc, flags, states, first_match, sigs, nclasses, stride,
                   trans_width, out_width, nsections, max_outputs, max_len, sections)
 
