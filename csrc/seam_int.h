@@ -24,7 +24,12 @@ SS_INLINE uint32_t ss__ld_w(const uint8_t *p, uint32_t w)
 }
 
 #define SS__SIG_RECORD 20u
-#define LANES 8 /* flow sides walked together by ss_scan_batch */
+/* Flow sides walked together by ss_scan_batch.  Measured on x86-64 with
+ * 1,000 signatures, runs alternating in one session: tools/bench_scan.py's
+ * payloads 855-954 MB/s with 7 lanes, 615-661 with 8, 804-845 with 6; the
+ * replay benchmark's batches mostly 939-1001 with 7 against 665-761 with 8.
+ * seam.h's "cap >= 8 * max_outputs" covers any LANES up to 8. */
+#define LANES 7
 
 /* Where a scan stands: the state, the offset of the next byte, the offset
  * where the current datagram began (for datagram-scoped matches), and where
