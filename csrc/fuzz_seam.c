@@ -61,7 +61,7 @@
 #define PREFIX 4u
 #define MAX_STREAM 65536u
 #define SIG_RECORD 20u
-#define NSLOTS 11u /* more than the batch scan's 8 lanes */
+#define NSLOTS 11u /* more than the batch scan's lanes (LANES, at most 8) */
 #define MAX_PIECES 48u
 #define BATCH_LANES 8u /* seam.h: ss_scan_batch needs cap >= 8 * max_outputs */
 
