@@ -483,7 +483,6 @@ def test_lane_flow_table_under_churn():
     items = ffi.new("uint8_t[]", 40 * 8)
     meta = ffi.new("uint8_t[]", lib.SF_META_SIZE * 8)
     data = ffi.new("uint8_t[]", 4096)
-    touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * lib.SF_RUN_MAX)
     rec = ffi.new("uint8_t[]", 48)
     st_buf = bytearray(_STATE.size)
     st = ffi.from_buffer("sf_side_state *", st_buf)
@@ -515,7 +514,7 @@ def test_lane_flow_table_under_churn():
         c_buf = ffi.from_buffer(buf)
         r = ffi.new("sf_run *")
         r.pos, r.sweep_at, r.buf, r.len = 24, float("inf"), c_buf, len(buf)
-        r.items, r.meta, r.data, r.touched, r.rec = items, meta, data, touched, rec
+        r.items, r.meta, r.data, r.rec = items, meta, data, rec
         r.item_cap, r.data_cap, r.units, r.limit, r.ethernet = 8, 4096, 10**6, 65535, 1
         lib.sf_lane_run(lane, r)
         assert r.fast == ((src, dst, sport, dport) in keys.values()), step

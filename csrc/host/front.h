@@ -36,7 +36,7 @@ uint32_t sf__rd32(const uint8_t *p, int big);
 
 #define SF_KEY_SIZE 40u   /* proto, address length, sport, dport (big-endian), 0, 0, src, dst */
 #define SF_META_SIZE 24u  /* per batch item: u64 frame, f64 ts, u32 slot, u32 0 */
-#define SF_TOUCH_SIZE 16u /* per touched flow: u32 flow slot, u32 0, f64 last ts */
+#define SF_TOUCH_SIZE 24u /* per touched flow: u32 flow slot, u32 0, u64 frame, f64 ts */
 #define SF_RUN_MAX 4096u  /* records handled per sf_lane_run call, at most */
 
 #define SF_RUN_STOP 0  /* the record at pos is not the lane's: Python takes it */
@@ -58,8 +58,7 @@ typedef struct {
 
 /* One call's inputs and outputs.  items/meta/data are the sink's batch
  * (ss_item records, SF_META_SIZE records, payload bytes); nitems, ndata and
- * frame are carried in and out; touched gets, in order of their last
- * packet, each flow slot the call touched and its last timestamp.  When
+ * frame are carried in and out.  When
  * the lane stops (SF_RUN_STOP) at a record wholly in the buffer, rec gets
  * that record as sf_pcap_records writes it (nrec = 1, rec_fast, rec_end:
  * where the next record starts); else nrec = 0.  retransmitted: payload
@@ -69,11 +68,11 @@ typedef struct {
     uint64_t pos, frame, nitems, ndata;
     double sweep_at;
     /* out */
-    uint64_t fast, ntouched, nrec, rec_fast, rec_end, retransmitted;
+    uint64_t fast, nrec, rec_fast, rec_end, retransmitted;
     /* set when they change */
     const uint8_t *buf;
     uint64_t len;
-    uint8_t *items, *meta, *data, *touched, *rec;
+    uint8_t *items, *meta, *data, *rec;
     uint64_t item_cap, data_cap;
     int32_t big, ethernet;
     uint32_t units, limit;
@@ -89,4 +88,9 @@ int sf_lane_lend(sf_lane *lane, uint32_t sid, const uint8_t *key, const sf_side_
  * 2 * keep bytes); the key is forgotten. */
 void sf_lane_reclaim(sf_lane *lane, uint32_t sid, sf_side_state *st, uint8_t *tail);
 int sf_lane_run(sf_lane *lane, sf_run *run);
+/* The flows the lane touched since the last call (each once, in no order):
+ * SF_TOUCH_SIZE records to out (room for max_flows); returns how many. */
+size_t sf_lane_touched(sf_lane *lane, uint8_t *out);
+/* Forget flow slot fs's touch, if any: 1 and its last frame and time. */
+int sf_lane_untouch(sf_lane *lane, uint32_t fs, uint64_t *frame, double *ts);
 #endif

@@ -31,9 +31,12 @@ struct sf_lane {
     uint32_t max_sides, mask, keep;
     uint32_t *index; /* open addressing, linear probing: sid + 1, 0 empty */
     side *sides;
-    double *last_ts;    /* per flow slot */
-    uint32_t *last_pos; /* per flow slot: its last entry in the touch log */
-    uint32_t *log;      /* flow slot per packet handled, this call */
+    /* Flows touched since Python last asked (sf_lane_touched): per flow
+     * slot the frame and time of its last packet here, and where it is in
+     * the list `pend` (npend entries), or UINT32_MAX. */
+    double *last_ts;
+    uint64_t *last_frame;
+    uint32_t *pend_at, *pend, npend, max_flows;
 };
 
 static uint32_t hash_key(const uint8_t *k, uint32_t mask)
@@ -61,11 +64,15 @@ sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep)
     L->keep = keep;
     L->index = calloc(cap, sizeof *L->index);
     L->sides = calloc(L->max_sides, sizeof *L->sides);
+    L->max_flows = max_flows;
     L->last_ts = calloc(max_flows, sizeof *L->last_ts);
-    L->last_pos = calloc(max_flows, sizeof *L->last_pos);
-    L->log = calloc(SF_RUN_MAX, sizeof *L->log);
-    if (L->index && L->sides && L->last_ts && L->last_pos && L->log)
+    L->last_frame = calloc(max_flows, sizeof *L->last_frame);
+    L->pend_at = malloc(max_flows * sizeof *L->pend_at);
+    L->pend = malloc(max_flows * sizeof *L->pend);
+    if (L->index && L->sides && L->last_ts && L->last_frame && L->pend_at && L->pend) {
+        memset(L->pend_at, 0xFF, max_flows * sizeof *L->pend_at);
         return L;
+    }
 fail:
     sf_lane_free(L);
     return NULL;
@@ -82,8 +89,9 @@ void sf_lane_free(sf_lane *L)
     free(L->index);
     free(L->sides);
     free(L->last_ts);
-    free(L->last_pos);
-    free(L->log);
+    free(L->last_frame);
+    free(L->pend_at);
+    free(L->pend);
     free(L);
 }
 
@@ -203,11 +211,51 @@ static int old_copy(const side *S, uint32_t seq, const uint8_t *p, uint32_t n)
     return memcmp(p + skip, S->tail + (off + skip - tail_start), n - skip) == 0;
 }
 
+static void touch(sf_lane *L, uint32_t fs, uint64_t frame, double ts)
+{
+    if (L->pend_at[fs] == UINT32_MAX) {
+        L->pend_at[fs] = L->npend;
+        L->pend[L->npend++] = fs;
+    }
+    L->last_frame[fs] = frame;
+    L->last_ts[fs] = ts;
+}
+
+size_t sf_lane_touched(sf_lane *L, uint8_t *out)
+{
+    uint32_t i, n = L->npend, zero = 0;
+    for (i = 0; i < n; i++) {
+        uint32_t fs = L->pend[i];
+        uint8_t *o = out + (size_t)i * SF_TOUCH_SIZE;
+        memcpy(o, &fs, 4);
+        memcpy(o + 4, &zero, 4);
+        memcpy(o + 8, &L->last_frame[fs], 8);
+        memcpy(o + 16, &L->last_ts[fs], 8);
+        L->pend_at[fs] = UINT32_MAX;
+    }
+    L->npend = 0;
+    return n;
+}
+
+int sf_lane_untouch(sf_lane *L, uint32_t fs, uint64_t *frame, double *ts)
+{
+    uint32_t at, last;
+    if (fs >= L->max_flows || (at = L->pend_at[fs]) == UINT32_MAX)
+        return 0;
+    *frame = L->last_frame[fs];
+    *ts = L->last_ts[fs];
+    last = L->pend[--L->npend];
+    L->pend[at] = last;
+    L->pend_at[last] = at;
+    L->pend_at[fs] = UINT32_MAX;
+    return 1;
+}
+
 int sf_lane_run(sf_lane *L, sf_run *r)
 {
     const uint8_t *buf = r->buf;
     uint64_t pos = r->pos;
-    uint32_t nlog = 0, i, nt = 0;
+    uint64_t handled = 0;
     int rc = SF_RUN_STOP;
     uint8_t key[SF_KEY_SIZE];
     r->retransmitted = 0;
@@ -220,7 +268,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
         sf_pkt k;
         int64_t sid;
         side *S;
-        if (nlog == SF_RUN_MAX) {
+        if (handled == SF_RUN_MAX) {
             rc = SF_RUN_CHUNK;
             break;
         }
@@ -256,12 +304,11 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             if (!old_copy(S, k.seq, f + k.ps, n))
                 break; /* ahead, partly new, or disagreeing: the tracker's general path */
             r->frame++;
-            L->last_ts[sid >> 1] = ts;
-            L->last_pos[sid >> 1] = nlog;
-            L->log[nlog++] = (uint32_t)(sid >> 1);
+            touch(L, (uint32_t)(sid >> 1), r->frame, ts);
             S->st.packets++;
             r->retransmitted += n;
             r->fast++;
+            handled++;
             pos += 16u + caplen;
             continue;
         }
@@ -270,9 +317,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             break;
         }
         r->frame++;
-        L->last_ts[sid >> 1] = ts;
-        L->last_pos[sid >> 1] = nlog;
-        L->log[nlog++] = (uint32_t)(sid >> 1);
+        touch(L, (uint32_t)(sid >> 1), r->frame, ts);
         S->st.packets++;
         if (n) {
             ss_item it;
@@ -305,18 +350,9 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             }
         }
         r->fast++;
+        handled++;
         pos += 16u + caplen;
     }
-    for (i = 0; i < nlog; i++) {
-        uint32_t fs = L->log[i], zero = 0;
-        if (L->last_pos[fs] != i)
-            continue;
-        memcpy(r->touched + (size_t)nt * SF_TOUCH_SIZE, &fs, 4);
-        memcpy(r->touched + (size_t)nt * SF_TOUCH_SIZE + 4, &zero, 4);
-        memcpy(r->touched + (size_t)nt * SF_TOUCH_SIZE + 8, &L->last_ts[fs], 8);
-        nt++;
-    }
-    r->ntouched = nt;
     r->pos = pos;
     r->nrec = 0;
     if (rc == SF_RUN_STOP && pos <= r->len) { /* the record Python takes, framed */

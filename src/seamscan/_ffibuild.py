@@ -58,11 +58,11 @@ typedef struct {
     uint64_t pos, frame, nitems, ndata;
     double sweep_at;
     /* out */
-    uint64_t fast, ntouched, nrec, rec_fast, rec_end, retransmitted;
+    uint64_t fast, nrec, rec_fast, rec_end, retransmitted;
     /* set when they change */
     const uint8_t *buf;
     uint64_t len;
-    uint8_t *items, *meta, *data, *touched, *rec;
+    uint8_t *items, *meta, *data, *rec;
     uint64_t item_cap, data_cap;
     int32_t big, ethernet;
     uint32_t units, limit;
@@ -80,6 +80,8 @@ int sf_lane_lend(sf_lane *lane, uint32_t sid, const uint8_t *key, const sf_side_
                  const uint8_t *tail);
 void sf_lane_reclaim(sf_lane *lane, uint32_t sid, sf_side_state *st, uint8_t *tail);
 int sf_lane_run(sf_lane *lane, sf_run *run);
+size_t sf_lane_touched(sf_lane *lane, uint8_t *out);
+int sf_lane_untouch(sf_lane *lane, uint32_t fs, uint64_t *frame, double *ts);
 """
 
 def _host_flags() -> list[str]:

@@ -45,6 +45,7 @@ Progress is reported every 4096 records or so, not every 4096 exactly.
 from __future__ import annotations
 
 import struct
+from operator import itemgetter
 
 from seamscan._seamcore import ffi, lib
 from seamscan.capture import _PCAP_MAGICS, CaptureError, CaptureReader, pcap_header
@@ -114,6 +115,8 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
             frame += 1
             if not exact:
                 ts = (sec * units + frac) / units
+            if lane is not None:
+                lane.cur = frame
             if kind:  # a frame C does not decode: lending its flow would not help
                 pkt = decode(frame, ts, linktype, buf[ps:pe])
                 if pkt is not None:
@@ -176,6 +179,8 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
             return
         buf, pos, base, sec, frac, data = step
         frame += 1
+        if lane is not None:
+            lane.cur = frame
         pkt = decode(frame, (sec * units + frac) / units, linktype, data)
         if pkt is not None:
             side = packet(pkt)
@@ -184,17 +189,18 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
 
 
 _RUN_STOP, _RUN_FULL = lib.SF_RUN_STOP, lib.SF_RUN_FULL
-_TOUCH = struct.Struct("=I4xd")
+_TOUCH = struct.Struct("=I4xQd")  # SF_TOUCH_SIZE: flow slot, frame, ts
 # sf_side_state: next, sink_next, packets, bytes, expect, tail_len, proto,
 # side_code, transport, pad, port, pad2, cflags (and padding to 8 bytes)
 _STATE = struct.Struct("=QQQQIIBBBBHHI4x")
 # sf_run's first fields: pos, frame, nitems, ndata, sweep_at (carried in and
-# out), then fast, ntouched, nrec, rec_fast, rec_end, retransmitted (out)
+# out), then fast, nrec, rec_fast, rec_end, retransmitted (out)
 _RUN_IN = struct.Struct("=QQQQd")
-_RUN_OUT = struct.Struct("=QQQQdQQQQQQ")
+_RUN_OUT = struct.Struct("=QQQQdQQQQQ")
 assert ffi.offsetof("sf_run", "retransmitted") + 8 == _RUN_OUT.size
 assert _STATE.size == ffi.sizeof("sf_side_state")
-_NO_RESET = (1 << 64) - 1  # sf_side_state.sink_next: the next item resets the slot
+_NO_RESET = (1 << 64) - 1
+_second = itemgetter(1)  # sf_side_state.sink_next: the next item resets the slot
 
 
 class Lane:
@@ -210,9 +216,9 @@ class Lane:
     next one it cannot (a new or unlent flow side, a SYN, FIN or RST, a
     segment ahead of the next byte or partly new or disagreeing with the
     delivered tail, a frame the C decode does not take, a due idle sweep,
-    an inexact timestamp, a full batch), then brings every touched flow's
-    last timestamp and idle order up to date, in the order of their last
-    packets.
+    an inexact timestamp, a full batch).  The LRU touches of the lane and
+    of the tracker are held back (``_touch``) until the tracker needs the
+    idle order (its ``sync`` hook: idle sweep, eviction, finish).
     """
 
     def __init__(self, tracker, sink):
@@ -223,13 +229,16 @@ class Lane:
         if c == ffi.NULL:
             raise MemoryError("seamscan: cannot allocate the replay's flow table")
         self.c = ffi.gc(c, lib.sf_lane_free)
-        self.flows = [None] * tracker.max_flows  # flow slot -> lent flow
-        self.touches = [None] * tracker.max_flows  # flow slot -> its LRU's move_to_end
+        self.owner = [None] * tracker.max_flows  # flow slot -> its flow, once lent, till it ends
+        self.pending = {}  # flow -> frame of its last packet, touched since the last sync
+        self.cur = 0  # the frame of the packet the tracker is handling
         self.lent = bytearray(2 * tracker.max_flows)  # per side slot: lent?
         self.tail = ffi.new("uint8_t[]", 2 * self.keep + 1)
         self._tail = ffi.buffer(self.tail)
-        self.touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * lib.SF_RUN_MAX)
+        self.touched = ffi.new("uint8_t[]", lib.SF_TOUCH_SIZE * tracker.max_flows)
         self._touched = ffi.buffer(self.touched)
+        self._frame = ffi.new("uint64_t *")
+        self._ts = ffi.new("double *")
         self._r = bytearray(ffi.sizeof("sf_run"))
         self.r = ffi.from_buffer("sf_run *", self._r)
         self.rec = ffi.new("uint8_t[]", _REC.size)
@@ -244,10 +253,12 @@ class Lane:
         """Set the capture's constants for ``run``."""
         r = self.r
         r.big, r.units, r.limit, r.ethernet = big, units, limit, ethernet
-        r.touched = self.touched
         r.rec = self.rec
         self.counts = counts
         self._data = None
+        tracker = self.tracker
+        tracker._tcp_touch = tracker._udp_touch = self._touch
+        tracker.sync = self.sync
 
     def run(self, buf, pos, frame):
         """C takes the records from ``pos`` on; (pos, frame, stop reason,
@@ -264,7 +275,7 @@ class Lane:
         rbuf = self._r
         _RUN_IN.pack_into(rbuf, 0, pos, frame, sink.n, sink.nbytes, tracker._sweep_at)
         rc = lib.sf_lane_run(self.c, r)
-        (pos, frame, sink.n, sink.nbytes, _, handled, ntouched, nrec, rec_fast, _,
+        (pos, frame, sink.n, sink.nbytes, _, handled, nrec, rec_fast, _,
          retransmitted) = _RUN_OUT.unpack_from(rbuf, 0)
         if handled:
             counts = self.counts
@@ -272,11 +283,6 @@ class Lane:
             counts["decoded"] += handled
             if retransmitted:
                 tracker.counters["retransmitted_bytes"] += retransmitted
-            flows, touches = self.flows, self.touches
-            for fslot, ts in _TOUCH.iter_unpack(self._touched[:ntouched * _TOUCH.size]):
-                flow = flows[fslot]
-                flow.last_ts = ts
-                touches[fslot](flow)
         if rc == _RUN_FULL:
             sink.flush()
         rec = None
@@ -327,9 +333,7 @@ class Lane:
                 continue  # not lent: the tracker keeps the side (only speed differs)
             lent[sid] = 1
             flow.lent = True
-            self.flows[flow.slot] = flow
-            self.touches[flow.slot] = (self.tracker._tcp_touch if tcp
-                                       else self.tracker._udp_touch)
+            self.owner[flow.slot] = flow
 
     def _key(self, flow, s, sid):
         """Side ``s``'s sender key (``SF_KEY_SIZE`` bytes), or None when the
@@ -349,8 +353,10 @@ class Lane:
         return key
 
     def reclaim(self, flow, side):
-        """Take ``side`` (None: both sides) of a flow back into the tracker,
-        if lent: the tracker's ``reclaim`` hook."""
+        """Take ``side`` of a flow back into the tracker, if lent; with side
+        None (the flow is ending) both, and the flow's last timestamp from
+        the lane if its last packet went through it.  The tracker's
+        ``reclaim`` hook."""
         lent = self.lent
         base = 2 * flow.slot
         for s in flow._sides if side is None else (side,):
@@ -370,4 +376,36 @@ class Lane:
             self.sink.next_offset[sid] = -1 if sink_next == _NO_RESET else sink_next
         if not (lent[base] or lent[base + 1]):
             flow.lent = False
-            self.flows[flow.slot] = self.touches[flow.slot] = None
+        if side is None:
+            mine = self.pending.pop(flow, -1)
+            if lib.sf_lane_untouch(self.c, flow.slot, self._frame, self._ts) and \
+                    self._frame[0] > mine:
+                flow.last_ts = self._ts[0]
+            if self.owner[flow.slot] is flow:
+                self.owner[flow.slot] = None
+
+    def _touch(self, flow):
+        """The tracker's LRU touch while the lane runs: held back till ``sync``."""
+        self.pending[flow] = self.cur
+
+    def sync(self):
+        """Bring the idle order and last timestamps up to date: every flow
+        touched since the last sync (by the tracker or the lane) moves to
+        the end of its LRU, in the order of its last packet.  The tracker's
+        ``sync`` hook."""
+        pending = self.pending
+        n = lib.sf_lane_touched(self.c, self.touched)
+        if n:
+            owner = self.owner
+            for fslot, frame, ts in _TOUCH.iter_unpack(self._touched[:n * _TOUCH.size]):
+                flow = owner[fslot]
+                if frame > pending.get(flow, -1):
+                    pending[flow] = frame
+                    flow.last_ts = ts
+        if pending:
+            tcp, udp = self.tracker._tcp_lru, self.tracker._udp_lru
+            for flow, _frame in sorted(pending.items(), key=_second):
+                lru = tcp if flow.proto == 6 else udp
+                if flow in lru:
+                    lru.move_to_end(flow)
+            pending.clear()

@@ -304,10 +304,13 @@ class FlowTracker:
         # take back the sender's side; before a flow ends, reclaim(flow,
         # None) takes back both.  (A packet of the other side may recompute
         # a lent side's `expect` from stale fields: the lane's value replaces
-        # it when that side comes back.)  Last timestamps and the idle order
-        # are brought up to date by the lane before each packet the tracker
-        # sees.
+        # it when that side comes back.)  Before a flow ends the tracker
+        # calls reclaim(flow, None) whether or not it is lent.  The lane may
+        # also hold back the idle (LRU) order and last timestamps of the
+        # flows it and the tracker touched: the tracker calls sync() before
+        # it reads them (idle sweep, eviction, finish).
         self.reclaim = None
+        self.sync = None
 
     # -- packets ----------------------------------------------------------
 
@@ -364,6 +367,8 @@ class FlowTracker:
         Holes still open become gaps (held bytes after them are delivered)
         before each flow's end event.
         """
+        if self.sync is not None:
+            self.sync()
         live = list(self._tcp_lru) + list(self._udp_lru)
         if live:
             self._sweep(max(f.last_ts for f in live))
@@ -425,11 +430,15 @@ class FlowTracker:
 
     def _evict(self):
         """End the longest-idle live flow "evicted"."""
+        if self.sync is not None:
+            self.sync()
         heads = [next(iter(lru)) for lru in (self._tcp_lru, self._udp_lru) if lru]
         self._end_flow(min(heads, key=_last_ts), "evicted")
 
     def _sweep(self, ts):
         """End flows idle for longer than their timeout; forget expired closed 5-tuples."""
+        if self.sync is not None:
+            self.sync()
         self._sweep_at = ts + _SWEEP_INTERVAL
         tcp_cutoff, udp_cutoff = ts - self.tcp_idle, ts - self.udp_idle
         while True:  # oldest first across both tables
@@ -468,7 +477,7 @@ class FlowTracker:
 
     def _end_flow(self, flow, reason):
         """Give up open holes, deliver what is held, emit end, free the slot."""
-        if flow.lent:
+        if self.reclaim is not None:
             self.reclaim(flow, None)
         for s in flow._sides:
             self._flush(s)
