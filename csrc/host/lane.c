@@ -255,25 +255,26 @@ int sf_lane_run(sf_lane *L, sf_run *r)
 {
     const uint8_t *buf = r->buf;
     uint64_t pos = r->pos;
-    uint64_t handled = 0;
     int rc = SF_RUN_STOP;
     uint8_t key[SF_KEY_SIZE];
     r->retransmitted = 0;
     r->fast = 0;
     for (;;) {
-        const uint8_t *h = buf + pos, *f = h + 16;
+        const uint8_t *h, *f;
         uint32_t sec, frac, caplen, n;
         uint64_t whole;
         double ts;
         sf_pkt k;
         int64_t sid;
         side *S;
-        if (handled == SF_RUN_MAX) {
+        if (r->fast == SF_RUN_MAX) {
             rc = SF_RUN_CHUNK;
             break;
         }
         if (pos > r->len || r->len - pos < 16)
             break;
+        h = buf + pos;
+        f = h + 16;
         sec = sf__rd32(h, r->big);
         frac = sf__rd32(h + 4, r->big);
         caplen = sf__rd32(h + 8, r->big);
@@ -308,7 +309,6 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             S->st.packets++;
             r->retransmitted += n;
             r->fast++;
-            handled++;
             pos += 16u + caplen;
             continue;
         }
@@ -350,15 +350,14 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             }
         }
         r->fast++;
-        handled++;
         pos += 16u + caplen;
     }
     r->pos = pos;
     r->nrec = 0;
     if (rc == SF_RUN_STOP && pos <= r->len) { /* the record Python takes, framed */
         size_t end = 0, fast = 0;
-        r->nrec = sf_pcap_records(buf, r->len, pos, r->big, r->units, r->limit,
-                                            r->ethernet, r->rec, 1, &end, &fast);
+        r->nrec = sf_pcap_records(buf, r->len, pos, r->big, r->units, r->limit, r->ethernet,
+                                  r->rec, 1, &end, &fast);
         r->rec_end = end;
         r->rec_fast = fast;
     }
