@@ -20,6 +20,7 @@ ranges (192.0.2.0/24, 198.51.100.0/24, 203.0.113.0/24, 2001:db8::/32).
 from __future__ import annotations
 
 import gzip
+import os
 import random
 import struct
 from pathlib import Path
@@ -518,3 +519,51 @@ def test_lane_flow_table_under_churn():
         r.item_cap, r.data_cap, r.units, r.limit, r.ethernet = 8, 4096, 10**6, 65535, 1
         lib.sf_lane_run(lane, r)
         assert r.fast == ((src, dst, sport, dport) in keys.values()), step
+
+
+SANITIZED_RUN = r'''
+import os, random, sys
+sys.path.insert(0, sys.argv[1])  # tests/, for its capture writers
+import seamscan
+assert "sanitized" in seamscan.__file__, seamscan.__file__
+import test_fastpath as T
+from seamscan.replay import ReplayOptions, replay_file
+table = seamscan.compile(T.LANE_SIGS)
+rng = random.Random(77)
+for trial in range(40):
+    data = T.pcap_bytes(T.lane_capture(rng, rng.randrange(1, 12)), big=trial % 2 == 1)
+    path = os.path.join(sys.argv[2], "s.pcap")
+    open(path, "wb").write(data)
+    got = []
+    for flag in "10":
+        os.environ["SEAMSCAN_FASTPATH"] = flag
+        r = replay_file(path, table, ReplayOptions(keep_bytes=trial % 5, max_flows=1 + trial % 4))
+        got.append((r.records, dict(r.counters)))
+    assert got[0] == got[1], trial
+print("ok")
+'''
+
+
+def test_lane_under_sanitizers(tmp_path):
+    # The fast lane is host-only C, so the runtime's ASan/UBSan harness
+    # never runs it: build the extension with the sanitizers
+    # (tools/build_sanitized.py) and replay random conversations with it.
+    import shutil
+    import subprocess
+    import sys
+
+    gcc = shutil.which("gcc")
+    if gcc is None:
+        pytest.skip("gcc not found")
+    libs = [subprocess.run([gcc, f"-print-file-name={name}"], capture_output=True,
+                           text=True).stdout.strip() for name in ("libasan.so", "libubsan.so")]
+    if not all(Path(lib).is_file() for lib in libs):
+        pytest.skip("the sanitizer runtimes are not installed")
+    out = tmp_path / "sanitized"
+    subprocess.run([sys.executable, str(ROOT / "tools" / "build_sanitized.py"), str(out)],
+                   check=True, capture_output=True)
+    env = dict(os.environ, PYTHONPATH=str(out), LD_PRELOAD=" ".join(libs),
+               ASAN_OPTIONS="detect_leaks=0", UBSAN_OPTIONS="halt_on_error=1:print_stacktrace=1")
+    done = subprocess.run([sys.executable, "-c", SANITIZED_RUN, str(ROOT / "tests"), str(tmp_path)],
+                          env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0 and done.stdout.strip() == "ok", done.stderr[-3000:]
