@@ -300,15 +300,14 @@ class FlowTracker:
         # bytes) while it delivers their in-order packets; such a flow has
         # `lent` set.  Only sides with nothing held and no FIN are lent, and
         # a packet changes only its sender's state, so before the tracker
-        # handles a packet of such a flow it calls reclaim(flow, side) to
-        # take back the sender's side; before a flow ends, reclaim(flow,
-        # None) takes back both.  (A packet of the other side may recompute
-        # a lent side's `expect` from stale fields: the lane's value replaces
-        # it when that side comes back.)  Before a flow ends the tracker
-        # calls reclaim(flow, None) whether or not it is lent.  The lane may
-        # also hold back the idle (LRU) order and last timestamps of the
-        # flows it and the tracker touched: the tracker calls sync() before
-        # it reads them (idle sweep, eviction, finish).
+        # handles a packet of a lent flow it calls reclaim(flow, side) to
+        # take back the sender's side.  (A packet of the other side may
+        # recompute a lent side's `expect` from stale fields: the lane's value
+        # replaces it when that side comes back.)  Before any flow ends, lent
+        # or not, it calls reclaim(flow, None).  The lane may also hold back
+        # the idle (LRU) order and the last timestamps of the flows it and
+        # the tracker touched: the tracker calls sync() before it reads them
+        # (idle sweep, eviction, finish).
         self.reclaim = None
         self.sync = None
 
