@@ -48,7 +48,7 @@ import struct
 from operator import itemgetter
 
 from seamscan._seamcore import ffi, lib
-from seamscan.capture import _PCAP_MAGICS, CaptureError, CaptureReader, pcap_header
+from seamscan.capture import _PCAP_MAGICS, CaptureReader, pcap_header
 from seamscan.decode import Packet
 
 _REC = struct.Struct("=BBBBHHIIIIIIII d")
@@ -70,23 +70,15 @@ def feed(path, decoder, packet, progress, lane=None) -> str | None:
     ``replay._feed`` with ``decoder.decode``; the capture's damage or None.
     With ``lane`` (a :class:`Lane` whose tracker's ``packet`` this is), the
     in-order packets of lent flow sides go from the buffer to the sink in C."""
-    reader = None
-    try:
-        reader = _Reader(path)
-        if reader.format != "pcap":
-            from seamscan.replay import decode_records
+    from seamscan.replay import decode_records, read_capture
 
+    def body(reader):
+        if reader.format == "pcap":
+            _pcap(reader, reader.head, decoder, packet, progress, lane)
+        else:
             decode_records(reader, decoder.decode, packet, progress)
-            return None
-        _pcap(reader, reader.head, decoder, packet, progress, lane)
-    except CaptureError as err:
-        return str(err)
-    finally:
-        if reader is not None:
-            if progress is not None:
-                progress(reader.position())
-            reader.close()
-    return None
+
+    return read_capture(_Reader, path, progress, body)
 
 
 def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
@@ -199,6 +191,7 @@ _RUN_IN = struct.Struct("=QQQQd")
 _RUN_OUT = struct.Struct("=QQQQdQQQQQ")
 assert ffi.offsetof("sf_run", "retransmitted") + 8 == _RUN_OUT.size
 assert _STATE.size == ffi.sizeof("sf_side_state")
+assert _TOUCH.size == lib.SF_TOUCH_SIZE and _REC.size == lib.SF_REC_SIZE
 _NO_RESET = (1 << 64) - 1
 _second = itemgetter(1)  # sf_side_state.sink_next: the next item resets the slot
 
@@ -222,6 +215,9 @@ class Lane:
     """
 
     def __init__(self, tracker, sink):
+        from seamscan.replay import META
+
+        assert META.size == lib.SF_META_SIZE  # the sink's per-item record, as C writes it
         self.tracker = tracker
         self.sink = sink
         self.keep = tracker.keep_bytes

@@ -319,10 +319,19 @@ def replay_file(path, table: engine.Table, options: ReplayOptions | None = None,
 def _feed(path, decode, packet, progress) -> str | None:
     """Decode every record of the capture and hand its packet to the tracker;
     the capture's damage if it stops early, else None."""
+    return read_capture(open_capture, path, progress,
+                        lambda reader: decode_records(reader, decode, packet, progress))
+
+
+def read_capture(opener, path, progress, body) -> str | None:
+    """Open ``path`` with ``opener`` and run ``body(reader)``; the capture's
+    damage as a string if reading stopped there, else None.  The reader's
+    final position goes to ``progress`` and the reader is closed, whatever
+    happens."""
     reader = None
     try:
-        reader = open_capture(path)
-        decode_records(reader, decode, packet, progress)
+        reader = opener(path)
+        body(reader)
     except CaptureError as err:
         return str(err)
     finally:
