@@ -193,10 +193,15 @@ def read_header(image) -> Header:
 
 
 def read_names(image, header: Header) -> tuple[list[str], list[str]]:
-    """Signature ids and labels from the names section (the loader has checked its bounds)."""
+    """Signature ids and labels from the names section (the loader has checked its bounds).
+
+    The section is optional (``FORMAT.md``): without it, signature ``i`` is
+    named ``#i`` (1-based) and has no label, as a signature with an empty id."""
     ids: list[str] = []
     labels: list[str] = []
-    off, size = header.sections.get(SEC_NAMES, (0, 0))
+    if SEC_NAMES not in header.sections:
+        return [f"#{i + 1}" for i in range(header.sigs)], [""] * header.sigs
+    off, size = header.sections[SEC_NAMES]
     view = memoryview(image)[off:off + size]
     pos = 0
     for i in range(header.sigs):
