@@ -1051,7 +1051,7 @@ def test_cli_jobs_two_equals_jobs_one(tmp_path, rules, damaged):
         caps[1].write_bytes(caps[1].read_bytes()[:-30])
     runs = []
     for jobs in (1, 2):
-        out = cli("scan", *caps, "--rules", rules, "--format", "jsonl", "--jobs", jobs,
+        out = cli("scan", *caps, "--rules", rules, "--format", "jsonl", "--each-file", "--jobs", jobs,
                   "-o", tmp_path / f"out{jobs}.jsonl")
         assert out.returncode == (3 if damaged else 0), out.stderr
         assert out.stderr.count("damaged capture") == damaged
@@ -1076,7 +1076,7 @@ def test_cli_damaged_capture_keeps_what_was_found(tmp_path, rules):
     found = [r for r in replay(cap, table).records if r["type"] == "match"]
     lost = [m for m in found if m["frame"] == frames]  # completed by the damaged record
     assert len(lost) == 1
-    out = cli("scan", cut, cap, "--rules", rules)  # not a terminal: jsonl by default
+    out = cli("scan", cut, cap, "--rules", rules, "--each-file")  # not a terminal: jsonl
     assert out.returncode == 3
     recs = jsonl(out.stdout)
     errors = [r for r in recs if r["type"] == "error"]

@@ -68,9 +68,14 @@ def build_parser() -> argparse.ArgumentParser:
     sc.add_argument("--format", choices=("table", "jsonl", "csv"),
                     help="output format (default: table on a terminal, else jsonl)")
     sc.add_argument("-o", "--output", metavar="FILE", help="write records here (default: stdout)")
+    sc.add_argument("--each-file", action="store_true",
+                    help="replay each capture on its own (unrelated captures); by default the "
+                    "captures given are one continuous capture, read in the order given (the "
+                    "files of a rotated ring): flows, streams and fragments carry on from one "
+                    "file into the next")
     sc.add_argument("--jobs", type=int, default=1, metavar="N",
-                    help="scan N capture files in parallel processes; output stays in file "
-                    "order (default 1)")
+                    help="with --each-file: replay N capture files in parallel processes; "
+                    "output stays in file order (default 1)")
     sc.add_argument("--quiet", action="store_true", help="no progress bar")
     sc.add_argument("--show-clean", action="store_true",
                     help="table format: also list flows without matches")
@@ -184,6 +189,9 @@ def cmd_scan(args) -> int:
             return _fail(f"{path}: no such capture file", EXIT_USAGE)
     if args.jobs < 1:
         return _fail("--jobs must be at least 1", EXIT_USAGE)
+    if args.jobs > 1 and not args.each_file:
+        return _fail("--jobs applies only with --each-file: without it the captures are one "
+                     "continuous capture, replayed in one process", EXIT_USAGE)
     if args.max_flows < 1:
         return _fail("--max-flows must be at least 1", EXIT_USAGE)
     table, code = _load_table(args)
@@ -210,7 +218,7 @@ def cmd_scan(args) -> int:
     t0 = time.perf_counter()
     try:
         for result in _results(args, table, options, writer.write, bar):
-            total.update(result.counters)
+            replay.add_counters(total, result.counters)
             if result.error:
                 damaged.append(result.error)
                 writer.write({"type": "error", "file": result.path, "message": result.error})
@@ -238,40 +246,63 @@ def _progress(args):
 
 
 def _results(args, table, options, write, bar):
-    """Replay each file, in file order; with --jobs, files in parallel processes."""
+    """Each file's result, in file order: one continuous replay of all the
+    captures, or with --each-file a replay per file (with --jobs, files in
+    parallel processes)."""
     from seamscan import replay
 
-    if args.jobs == 1 or len(args.captures) == 1:
-        done = 0
-        for path in args.captures:
-            def progress(pos, base=done):
-                if bar is not None:
-                    bar.n = base + pos
-                    bar.refresh()
+    sizes = [os.path.getsize(p) for p in args.captures]
 
-            yield replay.replay_file(path, table, options, emit=write, progress=progress)
-            done += os.path.getsize(path)
+    def progress(i, pos):
+        if bar is not None:
+            bar.n = sum(sizes[:i]) + pos
+            bar.refresh()
+
+    if not args.each_file:
+        yield from replay.replay_files(args.captures, table, options, emit=write,
+                                       progress=progress)
         return
+    if args.jobs == 1 or len(args.captures) == 1:
+        for i, path in enumerate(args.captures):
+            yield replay.replay_file(path, table, options, emit=write,
+                                     progress=lambda pos, i=i: progress(i, pos))
+        return
+    import marshal
+    import tempfile
     from concurrent.futures import ProcessPoolExecutor
 
     blob = table.to_bytes()
-    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-        futures = [pool.submit(_replay_worker, path, blob, options) for path in args.captures]
-        for path, fut in zip(args.captures, futures, strict=True):
-            result = fut.result()
-            for rec in result.records:
-                write(rec)
+    with tempfile.TemporaryDirectory(prefix="seamscan-") as tmp, \
+            ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        futures = [pool.submit(_replay_worker, path, blob, options,
+                               os.path.join(tmp, f"{i}.records"))
+                   for i, path in enumerate(args.captures)]
+        for size, fut in zip(sizes, futures, strict=True):
+            result, spool = fut.result()
+            with open(spool, "rb") as f:  # the file's records, streamed, not held
+                while True:
+                    try:
+                        write(marshal.load(f))
+                    except EOFError:
+                        break
+            os.unlink(spool)
             if bar is not None:
-                bar.update(os.path.getsize(path))
-            result.records = []
+                bar.update(size)
             yield result
 
 
-def _replay_worker(path, blob, options):
+def _replay_worker(path, blob, options, spool):
+    """Replay one file in a worker process; its records go to the file
+    ``spool`` (one marshal dump each) for the parent to stream in order."""
+    import marshal
+
     from seamscan import replay
     from seamscan.engine import Table
 
-    return replay.replay_file(path, Table.from_bytes(blob), options)
+    with open(spool, "wb") as f:
+        result = replay.replay_file(path, Table.from_bytes(blob), options,
+                                    emit=lambda rec: marshal.dump(rec, f))
+    return result, spool
 
 
 def cmd_compile(args) -> int:

@@ -527,7 +527,9 @@ class Run:
 
     def add_file(self, result) -> None:
         c = result.counters
-        self.counters.update(c)
+        from seamscan.replay import add_counters
+
+        add_counters(self.counters, c)
         self.captures.append({"path": result.path, "frames": c.get("frames", 0),
                               "flows": c.get("flows", 0),
                               "bytes_scanned": c.get("bytes_scanned", 0),
@@ -538,13 +540,19 @@ class Run:
         return {k for k, f in self.flows.items() if f.hits}
 
 
-def run_captures(paths, table, options=None) -> Run:
-    """Replay every capture with ``table`` under ``options`` into one :class:`Run`."""
-    from seamscan.replay import replay_file
+def run_captures(paths, table, options=None, *, each_file=False) -> Run:
+    """Replay the captures with ``table`` under ``options`` into one :class:`Run`:
+    as one continuous capture in the order given (a rotated ring), or with
+    ``each_file`` each on its own."""
+    from seamscan.replay import replay_file, replay_files
 
     run = Run()
-    for path in paths:
-        run.add_file(replay_file(path, table, options, emit=run.write))
+    if each_file:
+        for path in paths:
+            run.add_file(replay_file(path, table, options, emit=run.write))
+    else:
+        for result in replay_files(paths, table, options, emit=run.write):
+            run.add_file(result)
     return run
 
 
@@ -819,13 +827,15 @@ def compare_device(host: Run, device: Run, profile: Profile, fit: dict) -> dict:
 
 def rate(captures, sigset, *, labels: Labels | None = None, against=None,
          profile: Profile | None = None, noisy_share: float = NOISY_SHARE,
-         options=None) -> dict:
+         options=None, each_file: bool = False) -> dict:
     """The report object for ``sigset`` on ``captures`` (see ``REPORT_SCHEMA``).
 
     ``labels`` from :func:`load_labels`, ``against`` an older
     :class:`~seamscan.signatures.SignatureSet`, ``profile`` from
     :func:`load_profile`; ``options`` are the host run's
-    :class:`~seamscan.replay.ReplayOptions` (default: scan's).  Raises
+    :class:`~seamscan.replay.ReplayOptions` (default: scan's).  The captures
+    are one continuous capture in the order given, or with ``each_file``
+    each replayed on its own.  Raises
     :class:`~seamscan.compiler.CompileError` when a set cannot be compiled at
     all; damaged captures are reported in ``captures[].error``.
     """
@@ -835,7 +845,7 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
     options = options or ReplayOptions()
     captures = [os.fsdecode(p) for p in captures]
     table = engine.compile(sigset)
-    run = run_captures(captures, table, options)
+    run = run_captures(captures, table, options, each_file=each_file)
     sigs = signature_stats(run, sigset, noisy_share)
     scored = score_labels(run, sigset, labels) if labels else None
     if scored:
@@ -857,7 +867,8 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
         report["labels"] = {k: v for k, v in scored.items()
                             if k not in ("per_signature", "verdicts")}
     if against is not None:
-        old_run = run_captures(captures, engine.compile(against), options)
+        old_run = run_captures(captures, engine.compile(against), options,
+                               each_file=each_file)
         old_sigs = signature_stats(old_run, against, noisy_share)
         old_scored = score_labels(old_run, against, labels) if labels else None
         report["against"] = compare_sets(run, sigset, sigs, old_run, against, old_sigs,
@@ -866,7 +877,8 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
         fit, device_table = table_fit(sigset, profile)
         dev_opts = dataclasses.replace(options, max_flows=profile.max_flows,
                                        hold_bytes=profile.hold_bytes)
-        dev_run = run_captures(captures, device_table or table, dev_opts)
+        dev_run = run_captures(captures, device_table or table, dev_opts,
+                               each_file=each_file)
         report["device"] = compare_device(run, dev_run, profile, fit)
     return report
 
@@ -925,6 +937,9 @@ def add_rate_parser(subparsers):
                     help="device limits to replay under (max_flows, hold_bytes, layout, budget)")
     ra.add_argument("--report", metavar="DIR",
                     help="write report.json, signatures.csv and report.html into DIR")
+    ra.add_argument("--each-file", action="store_true",
+                    help="replay each capture on its own; by default the captures are one "
+                    "continuous capture in the order given (a rotated ring)")
     ra.add_argument("--format", choices=("table", "json"), default="table",
                     help="terminal tables (default) or the report object as JSON")
     ra.add_argument("--noisy-share", type=_share_arg, default=NOISY_SHARE, metavar="SHARE",
@@ -962,7 +977,7 @@ def cmd_rate(args) -> int:
             return _fail(f"{args.report}: cannot create the report directory: {err.strerror}")
     try:
         report = rate(args.captures, sigset, labels=labels, against=against, profile=profile,
-                      noisy_share=args.noisy_share)
+                      noisy_share=args.noisy_share, each_file=args.each_file)
     except CompileError as err:
         return _fail(f"{args.rules}: {err}")
     from seamscan import report as render

@@ -65,27 +65,31 @@ class _Reader(CaptureReader):
         return iter(())
 
 
-def feed(path, decoder, packet, progress, lane=None) -> str | None:
+def feed(path, decoder, packet, progress, lane=None, base=0) -> str | None:
     """Decode every record of ``path`` and hand each packet to ``packet``, as
     ``replay._feed`` with ``decoder.decode``; the capture's damage or None.
     With ``lane`` (a :class:`Lane` whose tracker's ``packet`` this is), the
-    in-order packets of lent flow sides go from the buffer to the sink in C."""
+    in-order packets of lent flow sides go from the buffer to the sink in C.
+    Packets carry frame numbers counted from ``base`` (the frames of the
+    captures read before this one in the same replay)."""
     from seamscan.replay import decode_records, read_capture
 
     def body(reader):
         if reader.format == "pcap":
-            _pcap(reader, reader.head, decoder, packet, progress, lane)
+            _pcap(reader, reader.head, decoder, packet, progress, lane, base)
         else:
-            decode_records(reader, decoder.decode, packet, progress)
+            decode_records(reader, decoder.decode, packet, progress, base)
 
     return read_capture(_Reader, path, progress, body)
 
 
-def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
+def _pcap(reader, buf, decoder, packet, progress, lane, base_frame=0) -> None:
     """The records of a classic pcap file whose buffer ``buf`` starts with
     its header: ``CaptureReader._pcap_records`` with the complete records
     of each buffer framed (and mostly decoded) in C, and with a lane, the
-    lane's packets delivered in C."""
+    lane's packets delivered in C.  ``frame`` counts this file's records (the
+    reader's messages name them); packets, the lane and the sink see
+    ``base_frame + frame``."""
     linktype, units, limit, unpack = pcap_header(buf)
     big = int(_PCAP_MAGICS[buf[:4]][0] == ">")
     ethernet = int(linktype == 1)
@@ -108,15 +112,15 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
             if not exact:
                 ts = (sec * units + frac) / units
             if lane is not None:
-                lane.cur = frame
+                lane.cur = base_frame + frame
             if kind:  # a frame C does not decode: lending its flow would not help
-                pkt = decode(frame, ts, linktype, buf[ps:pe])
+                pkt = decode(base_frame + frame, ts, linktype, buf[ps:pe])
                 if pkt is not None:
                     packet(pkt)
                 continue
             da = so + alen
             side = packet(_new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                        ack, flags, buf[ps:pe], frame, ts)))
+                                        ack, flags, buf[ps:pe], base_frame + frame, ts)))
             if relend is not None and side is not None:
                 relend(side)
         return frame
@@ -136,7 +140,8 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
         lane.start(counts, big, units, limit, ethernet)
     while True:
         if lane is not None:
-            pos, frame, rc, handled, rec = lane.run(buf, pos, frame)
+            pos, frame, rc, handled, rec = lane.run(buf, pos, base_frame + frame)
+            frame -= base_frame
             if rc == _RUN_STOP and rec is not None:  # the record the lane stopped at
                 frame = take(rec, buf, frame)
                 pos = lane.rec_end()
@@ -172,8 +177,8 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
         buf, pos, base, sec, frac, data = step
         frame += 1
         if lane is not None:
-            lane.cur = frame
-        pkt = decode(frame, (sec * units + frac) / units, linktype, data)
+            lane.cur = base_frame + frame
+        pkt = decode(base_frame + frame, (sec * units + frac) / units, linktype, data)
         if pkt is not None:
             side = packet(pkt)
             if relend is not None and side is not None:
@@ -181,6 +186,18 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
 
 
 _RUN_STOP, _RUN_FULL = lib.SF_RUN_STOP, lib.SF_RUN_FULL
+_live = [0]  # lanes whose C memory is not freed yet (``live_lanes``)
+
+
+def _free_lane(c):
+    _live[0] -= 1
+    lib.sf_lane_free(c)
+
+
+def live_lanes() -> int:
+    """How many fast lanes hold C memory now (a replay frees its lane when it
+    ends: tests check that this returns to 0 without the cyclic collector)."""
+    return _live[0]
 _TOUCH = struct.Struct("=I4xQd")  # SF_TOUCH_SIZE: flow slot, frame, ts
 # sf_side_state: next, sink_next, packets, bytes, expect, tail_len, proto,
 # side_code, transport, pad, port, pad2, cflags (and padding to 8 bytes)
@@ -224,7 +241,8 @@ class Lane:
         c = lib.sf_lane_new(tracker.max_flows, self.keep)
         if c == ffi.NULL:
             raise MemoryError("seamscan: cannot allocate the replay's flow table")
-        self.c = ffi.gc(c, lib.sf_lane_free)
+        self.c = ffi.gc(c, _free_lane)
+        _live[0] += 1
         self.owner = [None] * tracker.max_flows  # flow slot -> its flow, once lent, till it ends
         self.pending = {}  # flow -> frame of its last packet, touched since the last sync
         self.cur = 0  # the frame of the packet the tracker is handling
@@ -244,6 +262,18 @@ class Lane:
         self._buf = self._buf_c = None
         self._keys = {}  # side slot -> (side, its key or None), for the side last seen there
         tracker.reclaim = self.reclaim
+
+    def close(self):
+        """Free the lane's C memory now and let go of the tracker and sink
+        (they refer back to the lane: without this the lot waits for the
+        cyclic collector).  The tracker must not call the lane afterwards."""
+        if self.c is not None:
+            ffi.release(self.c)
+            self.c = None
+        self.tracker = self.sink = self.owner = self.pending = None
+        self.tail = self.touched = self._tail = self._touched = None
+        self._buf = self._buf_c = None
+        self.r = None
 
     def start(self, counts, big, units, limit, ethernet):
         """Set the capture's constants for ``run``."""

@@ -17,12 +17,13 @@ import math
 import os
 import struct
 import time
+from bisect import bisect_right
 from collections import Counter
 from dataclasses import dataclass, field
 from operator import itemgetter
 
 from seamscan import engine
-from seamscan._seamcore import ffi
+from seamscan._seamcore import ffi, lib
 from seamscan.capture import CaptureError, open_capture
 from seamscan.decode import Decoder, format_ip
 from seamscan.flows import CLIENT, FlowTracker
@@ -113,6 +114,36 @@ class ScanSink:
         self.n = 0
         self.nbytes = 0
         self._events: list[tuple] = []  # (item position, record or flow to end)
+        self.base = 0  # frames of the files before the one being read
+        self._files: list[tuple[int, str]] = [(0, path)]  # (frame base, path) per file
+
+    def begin_file(self, path: str, base: int) -> None:
+        """The next frames (numbered from ``base`` + 1) are those of ``path``;
+        nothing may be pending (``flush`` first)."""
+        assert not self.n and not self._events
+        if self._files[-1][0] == base:
+            self._files[-1] = (base, path)
+        else:
+            self._files.append((base, path))
+        self.path = path
+        self.base = base
+
+    def locate(self, frame: int) -> tuple[str, int]:
+        """(file, frame within it) of a frame number of the replay."""
+        if frame > self.base:
+            return self.path, frame - self.base
+        files = self._files
+        i = bisect_right(files, frame - 1, key=_first) - 1
+        base, path = files[max(i, 0)]
+        return path, frame - base
+
+    def close(self) -> None:
+        """Drop the batch memory now."""
+        self.c_items = self.c_meta = self.c_data = None
+        self._items = self._meta = self._data = None
+        self.scanner = None
+        self.ctx.clear()
+        self.by_slot.clear()
 
     def _grow(self, size):
         self.data_cap = size
@@ -174,15 +205,16 @@ class ScanSink:
         slot = 2 * flow.slot
         c = tuple((slot + side, side + 1, tcode, port, cflags,
                    {"type": "match", "sig": None, **fields, "side": SIDE_NAMES[side],
-                    "start": 0, "end": 0, "file": self.path, "frame": 0, "ts": 0.0})
+                    "start": 0, "end": 0, "file": "", "frame": 0, "ts": 0.0})
                   for side in (0, 1)) + (fields,)
         self.ctx[flow] = c
         self.by_slot[flow.slot] = flow
         return c
 
     def _range_record(self, kind, flow, side, offset, length, frame, ts):
+        path, frame = self.locate(frame)
         return {"type": kind, **self._fields(flow), "side": SIDE_NAMES[side], "start": offset,
-                "end": offset + length, "file": self.path, "frame": frame, "ts": ts}
+                "end": offset + length, "file": path, "frame": frame, "ts": ts}
 
     def _fields(self, flow):
         c = self.ctx.get(flow)
@@ -198,59 +230,117 @@ class ScanSink:
         return self.by_slot[fslot]
 
     def flush(self):
-        """Scan what is pending and emit the records, in delivery order."""
+        """Scan what is pending and emit the records, in delivery order.
+
+        Matches are emitted as the items that carry them are scanned through
+        (``ss_scan_batch`` says how many leading items are done after each
+        call), so only the matches of items still in progress are held: when
+        those pass ``_PENDING_CAP``, the batch goes on one item at a time,
+        which completes the first unfinished item at every call.  Memory
+        stays bounded however dense the matches are."""
         n = self.n
-        found = []
+        self._ei = 0
+        self._last = -1
         if n:
-            found = self.scanner.scan_items(self.c_items, n, self.c_data)
-            if len(found) > 1:
-                found.sort(key=_item_of)
-        events, emit, ids, ctx = self._events, self.emit, self.ids, self.ctx
-        meta = self._meta[:n * _META_SIZE] if found else b""  # bytes: quicker to unpack
-        by_slot, retired = self.by_slot, self._retired
-        ei = 0
-        due = events[0][0] if events else n  # item position of the next event
-        last = -1  # the item whose flow, frame, ts and template are at hand
-        for item, sig, start, end in found:
-            while item >= due:
-                self._event(events[ei][1])
-                ei += 1
-                due = events[ei][0] if ei < len(events) else n
-            if item != last:
-                last = item
-                frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
-                fslot = slot >> 1
-                flow = by_slot[fslot] if fslot not in retired else self._owner(fslot, item)
-                template = ctx[flow][slot & 1][5]
-            flow.matches += 1
-            record = template.copy()
-            record["sig"] = ids[sig]
-            record["start"] = start
-            record["end"] = end
-            record["frame"] = frame
-            record["ts"] = ts
-            emit(record)
-        for _pos, ev in events[ei:]:
+            scanner, table = self.scanner, self.table
+            items = ffi.cast("ss_item *", self.c_items)
+            out, nout, cap = scanner._out, scanner._nout, table._cap
+            scan, tt, states, data = lib.ss_scan_batch, table._t, scanner.states, self.c_data
+            unpack = engine.MATCH.iter_unpack
+            self._metab = None
+            pending = []
+            start = 0
+            while start < n:
+                window = n - start if len(pending) < _PENDING_CAP else 1
+                done = scan(tt, states, items + start, window, data, out, cap, nout)
+                k = nout[0]
+                if k:
+                    got = unpack(ffi.buffer(out, k * _MATCH_SIZE))
+                    if start:  # item indices count from the resumed position
+                        pending += [(item + start, sig, s, e) for item, sig, s, e in got]
+                    else:
+                        pending += got
+                    self.matches += k
+                start += done
+                if pending and (done or start >= n):
+                    if start >= n:
+                        ready, pending = pending, []
+                    else:
+                        ready = [m for m in pending if m[0] < start]
+                        pending = [m for m in pending if m[0] >= start]
+                    if ready:
+                        if len(ready) > 1:
+                            ready.sort(key=_item_of)
+                        self._emit_matches(ready)
+        events = self._events
+        for _pos, ev in events[self._ei:]:
             self._event(ev)
-        self.matches += len(found)
         self.bytes += self.nbytes
         self.n = 0
         self.nbytes = 0
         self._events = []
         self._retired.clear()
 
+    def _emit_matches(self, found):
+        """Emit the records of ``found`` (sorted by item), with the events due
+        before each item."""
+        events, emit, ids, ctx = self._events, self.emit, self.ids, self.ctx
+        meta = self._metab
+        if meta is None:  # bytes: quicker to unpack
+            meta = self._metab = self._meta[:self.n * _META_SIZE]
+        by_slot, retired = self.by_slot, self._retired
+        ei = self._ei
+        due = events[ei][0] if ei < len(events) else self.n  # item of the next event
+        last = self._last  # the item whose flow, frame, ts and template are at hand
+        base, path = self.base, self.path
+        if last >= 0:
+            flow, template, where, frame, ts = self._at
+        for item, sig, start, end in found:
+            while item >= due:
+                self._event(events[ei][1])
+                ei += 1
+                due = events[ei][0] if ei < len(events) else self.n
+            if item != last:
+                last = item
+                frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
+                fslot = slot >> 1
+                flow = by_slot[fslot] if fslot not in retired else self._owner(fslot, item)
+                template = ctx[flow][slot & 1][5]
+                if frame > base:
+                    where, frame = path, frame - base
+                else:
+                    where, frame = self.locate(frame)
+            flow.matches += 1
+            record = template.copy()
+            record["sig"] = ids[sig]
+            record["start"] = start
+            record["end"] = end
+            record["file"] = where
+            record["frame"] = frame
+            record["ts"] = ts
+            emit(record)
+        self._ei = ei
+        self._last = last
+        if last >= 0:
+            self._at = (flow, template, where, frame, ts)
+
     def _event(self, ev):
         if isinstance(ev, dict):
             self.emit(ev)
             return
         flow = ev
-        self.emit(flow_record(flow, self._fields(flow), self.path))
+        self.emit(flow_record(flow, self._fields(flow), self.path))  # the file being read
         self.ctx.pop(flow, None)
         if self.by_slot.get(flow.slot) is flow:
             del self.by_slot[flow.slot]
 
 
 _item_of = itemgetter(0)
+_first = itemgetter(0)
+_MATCH_SIZE = engine.MATCH.size
+# Matches of items still being scanned, held before the batch goes on one
+# item at a time (see ScanSink.flush).
+_PENDING_CAP = 1 << 16
 
 
 def fastpath_enabled() -> bool:
@@ -268,59 +358,187 @@ def flow_record(flow, fields, path) -> dict:
             "overlaps": flow.overlaps, "end": flow.end_reason}
 
 
+# Counters that are a running maximum, not a sum: a file's result carries the
+# peak so far, and adding results keeps the largest (``add_counters``).
+PEAK_COUNTERS = frozenset({"held_bytes_peak"})
+
+
+def add_counters(total: Counter, counters) -> None:
+    """Add one file's counters to ``total``: sums, except ``PEAK_COUNTERS``."""
+    for key, value in counters.items():
+        if key in PEAK_COUNTERS:
+            if value > total.get(key, 0):
+                total[key] = value
+        else:
+            total[key] += value
+
+
+class Replay:
+    """One replay over one or more captures read as one continuous capture.
+
+    Captures are read in the order given (``read``); flows, their streams,
+    held segments, IP fragments and idle timers carry on from one file into
+    the next, as for the files of a rotated capture ring.  Frames are
+    numbered across the files inside the replay; every record names the
+    file, and the frame within that file, of the record it refers to.
+    ``finish`` ends the flows still live; ``close`` releases the C memory at
+    once (it is also released when the object is dropped).
+    """
+
+    def __init__(self, table: engine.Table, options: ReplayOptions | None = None, emit=None):
+        options = options or ReplayOptions()
+        self.emit = emit
+        self.sink = ScanSink(table, 2 * options.max_flows, "", emit)
+        self.tracker = FlowTracker(self.sink, hold_bytes=options.hold_bytes,
+                                   hold_total=options.hold_total, max_flows=options.max_flows,
+                                   tcp_idle=options.tcp_idle, udp_idle=options.udp_idle,
+                                   keep_bytes=options.keep_bytes)
+        self.decoder = Decoder()
+        self.lane = None
+        self.fast = fastpath_enabled()
+        if self.fast:
+            from seamscan import fastpath
+            try:
+                self.lane = fastpath.Lane(self.tracker, self.sink)
+            except MemoryError:  # no room for its flow table: without it (same records)
+                self.lane = None
+        self.frames = 0  # frames read so far, all files: the next file's frame base
+        self._seen = Counter()  # the counters at the end of the last file
+        self.files = 0
+        self.finished = False
+
+    def _counters(self) -> Counter:
+        c = Counter(self.decoder.counters)
+        c.update(self.tracker.counters)
+        c["bytes_scanned"] = self.sink.bytes
+        c["matches"] = self.sink.matches
+        return c
+
+    def _take(self, result: FileResult) -> FileResult:
+        """Give ``result`` the counters since the last file (peaks: the peak so far)."""
+        now = self._counters()
+        seen = self._seen
+        c = result.counters
+        for key, value in now.items():
+            c[key] = value if key in PEAK_COUNTERS else value - seen.get(key, 0)
+        self._seen = now
+        c["files"] = 1
+        if result.error:
+            c["damaged_files"] = 1
+        return result
+
+    def read(self, path, progress=None, *, last=False) -> FileResult:
+        """Read one capture, continuing the flows of the files before it; with
+        ``last``, also finish the replay (its records and counters go to this
+        file's result).  A damaged capture is read up to the damage and
+        ``result.error`` says what and where; the next capture carries on."""
+        result = FileResult(str(path))
+        t0 = time.perf_counter()
+        sink = self.sink
+        sink.flush()  # pending items belong to the files before
+        sink.begin_file(str(path), self.frames)
+        collecting = gc.isenabled()
+        gc.disable()  # see ``replay_file``
+        try:
+            if self.fast:
+                from seamscan import fastpath
+                result.error = fastpath.feed(path, self.decoder, self.tracker.packet, progress,
+                                             self.lane, self.frames)
+            else:
+                result.error = _feed(path, self.decoder.decode, self.tracker.packet, progress,
+                                     self.frames)
+            self.frames = self.decoder._counts["frames"]
+            if last:
+                self._finish()
+            else:
+                sink.flush()
+        finally:
+            if collecting:
+                gc.enable()
+        self.files += 1
+        result.elapsed = time.perf_counter() - t0
+        return self._take(result)
+
+    def _finish(self):
+        self.decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
+        self.tracker.finish()
+        self.sink.flush()
+        self.finished = True
+
+    def finish(self) -> Counter:
+        """End the flows still live (after the last file); the counters this added."""
+        if self.finished:
+            return Counter()
+        self._finish()
+        return self._take(FileResult("")).counters
+
+    def close(self) -> None:
+        """Release the replay's C memory now: the fast lane refers to the
+        tracker and the tracker to the lane, so without this the pair waits
+        for the cyclic garbage collector."""
+        lane, self.lane = self.lane, None
+        if lane is not None:
+            lane.close()
+        tracker = self.tracker
+        tracker.reclaim = tracker.sync = None
+        tracker._tcp_touch = tracker._tcp_lru.move_to_end
+        tracker._udp_touch = tracker._udp_lru.move_to_end
+        self.sink.close()
+
+
+def replay_files(paths, table: engine.Table, options: ReplayOptions | None = None, *,
+                 emit=None, progress=None):
+    """Replay captures as one continuous capture (a rotated ring, say): yields
+    each file's :class:`FileResult` once it has been read (the last one after
+    the flows still live have ended).  ``progress(i, pos)``: file ``i`` read up
+    to byte ``pos``.  Records go to ``emit`` (or into each result)."""
+    paths = list(paths)
+    replay = None
+    try:
+        for i, path in enumerate(paths):
+            result = FileResult(str(path))
+            out = emit if emit is not None else result.records.append
+            if replay is None:
+                replay = Replay(table, options, out)
+            else:
+                replay.sink.emit = out
+            prog = None if progress is None else (lambda pos, i=i: progress(i, pos))
+            got = replay.read(path, prog, last=i == len(paths) - 1)
+            got.records = result.records
+            yield got
+    finally:
+        if replay is not None:
+            replay.close()
+
+
 def replay_file(path, table: engine.Table, options: ReplayOptions | None = None, *,
                 emit=None, progress=None) -> FileResult:
     """Replay one capture.  Records go to ``emit`` as they are made (or are
     collected in the result).  A damaged capture ends the replay where the
     damage is: everything before it is flushed and reported, flows end as
-    ``capture_end``, and ``result.error`` says what and where."""
-    options = options or ReplayOptions()
+    ``capture_end``, and ``result.error`` says what and where.
+
+    The replay makes no reference cycles (an ended flow drops its own), so
+    the cyclic collector would walk every live object again and again and
+    find nothing: it is paused while a capture is read, and restarted even on
+    error."""
     result = FileResult(str(path))
     out = emit if emit is not None else result.records.append
-    t0 = time.perf_counter()
-    sink = ScanSink(table, 2 * options.max_flows, str(path), out)
-    tracker = FlowTracker(sink, hold_bytes=options.hold_bytes, hold_total=options.hold_total,
-                          max_flows=options.max_flows, tcp_idle=options.tcp_idle,
-                          udp_idle=options.udp_idle, keep_bytes=options.keep_bytes)
-    decoder = Decoder()
-    # The replay makes no reference cycles (an ended flow drops its own), so
-    # the cyclic collector would walk every live object again and again and
-    # find nothing: it is paused for the replay, and restarted even on error.
-    collecting = gc.isenabled()
-    gc.disable()
+    replay = Replay(table, options, out)
     try:
-        if fastpath_enabled():
-            from seamscan import fastpath
-            try:
-                lane = fastpath.Lane(tracker, sink)
-            except MemoryError:  # no room for its flow table: without it (same records)
-                lane = None
-            result.error = fastpath.feed(path, decoder, tracker.packet, progress, lane)
-        else:
-            result.error = _feed(path, decoder.decode, tracker.packet, progress)
-        decoder.defrag.expire(math.inf)  # unfinished datagrams count as timed out
-        tracker.finish()
-        sink.flush()
+        got = replay.read(path, progress, last=True)
     finally:
-        if collecting:
-            gc.enable()
-    result.elapsed = time.perf_counter() - t0
-    c = result.counters
-    c.update(decoder.counters)
-    c.update(tracker.counters)
-    c["bytes_scanned"] = sink.bytes
-    c["matches"] = sink.matches
-    c["files"] = 1
-    if result.error:
-        c["damaged_files"] = 1
-    return result
+        replay.close()
+    got.records = result.records
+    return got
 
 
-def _feed(path, decode, packet, progress) -> str | None:
+def _feed(path, decode, packet, progress, base=0) -> str | None:
     """Decode every record of the capture and hand its packet to the tracker;
-    the capture's damage if it stops early, else None."""
+    the capture's damage if it stops early, else None.  Frames are numbered
+    from ``base`` + 1."""
     return read_capture(open_capture, path, progress,
-                        lambda reader: decode_records(reader, decode, packet, progress))
+                        lambda reader: decode_records(reader, decode, packet, progress, base))
 
 
 def read_capture(opener, path, progress, body) -> str | None:
@@ -342,12 +560,13 @@ def read_capture(opener, path, progress, body) -> str | None:
     return None
 
 
-def decode_records(reader, decode, packet, progress) -> None:
-    """Every record of an open reader through ``decode`` into ``packet``,
-    reporting the reader's position every 4096 records."""
+def decode_records(reader, decode, packet, progress, base=0) -> None:
+    """Every record of an open reader through ``decode`` into ``packet``
+    (frame numbers from ``base`` + 1), reporting the reader's position every
+    4096 records."""
     tick = 0
     for frame_no, ts, linktype, buf in reader:
-        pkt = decode(frame_no, ts, linktype, buf)
+        pkt = decode(base + frame_no, ts, linktype, buf)
         if pkt is not None:
             packet(pkt)
         if progress is not None:
