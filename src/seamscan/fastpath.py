@@ -116,7 +116,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
                 continue
             da = so + alen
             side = packet(_new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                        ack, flags, buf[ps:pe], frame, ts)))
+                                        ack, flags, buf[ps:pe], frame, ts, 0, None)))
             if relend is not None and side is not None:
                 relend(side)
         return frame
