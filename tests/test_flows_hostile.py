@@ -329,3 +329,48 @@ def test_held_chunk_cost_matches_what_python_allocates():
         tracemalloc.stop()
     per_chunk = used / n - 8
     assert 0.9 * HELD_CHUNK_COST <= per_chunk <= HELD_CHUNK_COST, per_chunk
+
+
+# -- a new connection on a live flow's 5-tuple ----------------------------------
+
+
+def synack_of(cv, syn_conv, ts=0.0):
+    """The server's SYN-ACK of `cv`, acknowledging the SYN of `syn_conv` (RFC 9293 §3.5)."""
+    return cv.synack(ts)._replace(ack=(syn_conv.isn[CLIENT] + 1) % MOD)
+
+
+def test_new_connection_after_a_rst_the_tracker_could_not_place():
+    # the RST's sequence number is beyond every byte seen (the capture lost
+    # the sender's last segment): ignored; the next connection on the same
+    # 5-tuple must not land in the old flow
+    cv = Conv()
+    again = Conv(cisn=cv.isn[CLIENT] + 2**31, sisn=77)
+    t, rec = feed(cv.open() + [cv.seg(CLIENT, 0, b"abc"), rst(cv, CLIENT, 500),
+                               again.syn(ts=1.0), synack_of(again, again, ts=1.0),
+                               again.seg(CLIENT, 0, b"temp=21.5", ts=1.0),
+                               again.seg(SERVER, 0, b"ok", ts=1.0)])
+    t.finish()
+    old, new = rec.flows()
+    assert old.end_reason == "reused" and old.packets == [4, 1]  # the ignored RST too
+    assert rec.stream(new, CLIENT) == b"temp=21.5" and rec.stream(new, SERVER) == b"ok"
+    assert new.packets == [2, 2] and new.client == old.client
+    assert t.counters["ended_reused"] == 1 and t.counters["syn_on_live_flow"] == 1
+
+
+def test_a_syn_nobody_answers_changes_nothing():
+    cv = Conv()
+    forged = Conv(cisn=cv.isn[CLIENT] + 12345)
+    t, rec = feed(cv.open() + [cv.seg(CLIENT, 0, b"mode=ov"), forged.syn(),
+                               synack_of(cv, cv),  # a SYN-ACK acking the old SYN: not it
+                               cv.seg(CLIENT, 7, b"erride")])
+    t.finish()
+    (f,) = rec.flows()
+    assert rec.stream(f, CLIENT) == b"mode=override" and f.end_reason == "capture_end"
+    assert t.counters["syn_on_live_flow"] == 1 and t.counters["ended_reused"] == 0
+
+
+def test_a_retransmitted_syn_is_not_a_new_connection():
+    cv = Conv()
+    t, rec = feed(cv.open() + [cv.syn(), synack_of(cv, cv), cv.seg(CLIENT, 0, b"abc")])
+    t.finish()
+    assert len(rec.flows()) == 1 and t.counters["syn_on_live_flow"] == 0

@@ -137,3 +137,24 @@ def test_fin_with_a_wrong_checksum_and_data_keeps_the_data(tmp_path):
     assert overrides(result) == [("client", 1023, 8080, 12)]
     assert of_type(result, "flow")[0]["end"] == "fin"
     assert result.counters["ignored_fin_checksum"] == 1
+
+
+def test_new_connection_after_a_rst_beyond_the_bytes_seen(tmp_path):
+    # the capture lost the client's last segment, so its RST lies beyond every
+    # byte seen and is ignored; the next connection on the same ports (a new
+    # ISN, answered by a SYN-ACK) is a new flow with its match
+    clock = Clock()
+    c = Conversation(CLIENT_EP, SERVER_EP, clock=clock)
+    c.handshake()
+    c.send("client", b"GET /zone/4")
+    c.next[0] += 40  # sent, not captured
+    control(c, "client", c.next[0], "RA")
+    again = Conversation(CLIENT_EP, SERVER_EP, isn_c=c.isn[0] + 2**31, isn_s=77, clock=clock)
+    again.handshake()
+    again.send("client", b"PUT mode=override")
+    again.close()
+    _, table = compiled(*SIGS)
+    result = replay(write(tmp_path, c.packets + again.packets), table)
+    assert overrides(result) == [("client", 1023, 8080, 4)]
+    assert [f["end"] for f in of_type(result, "flow")] == ["reused", "fin"]
+    assert result.counters["ignored_rst"] == 1 and result.counters["ended_reused"] == 1

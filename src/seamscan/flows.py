@@ -52,6 +52,9 @@ Contract, in short (the sink's side of it is in `Sink`):
   (captures on the sending host show offloaded segments unsummed, and no
   data segment's checksum is checked); without payload it is ignored whole.
   Every ignored FIN or RST is counted; none starts a side or moves one.
+* A SYN without ACK on a live flow at a new sequence number is held back;
+  when the peer's SYN-ACK acknowledges it, the flow ends "reused" and the
+  two packets start a new flow (a SYN alone is counted and ignored).
 * Both FINs with everything before them delivered end a flow "fin"; idle
   flows end by capture time (checked at most once per capture second,
   oldest first); the `max_flows` cap evicts the longest-idle flow. After a
@@ -102,6 +105,8 @@ COUNTERS: dict[str, str] = {
     "ended_idle": "flows ended after tcp_idle / udp_idle seconds without a packet",
     "ended_evicted": "flows ended because the table held max_flows flows",
     "ended_capture_end": "flows still live at finish()",
+    "ended_reused": "flows ended because a new connection took their 5-tuple: a SYN at a new "
+    "sequence number, answered by the peer's SYN-ACK acknowledging it",
     "retransmitted_bytes": "payload bytes received again and dropped: they agreed with the "
     "bytes received first, or were too old to compare (older than the kept tail, or "
     "inside a range already given up as a gap)",
@@ -133,6 +138,8 @@ COUNTERS: dict[str, str] = {
     "of that side came first at another place",
     "ignored_fin_checksum": "FINs with a wrong TCP checksum: the FIN ignored, any payload taken as "
     "a plain segment's",
+    "syn_on_live_flow": "SYNs without ACK at a new sequence number on a live flow: held back "
+    "until the peer's SYN-ACK acknowledges one (then the flow ends \"reused\"), else ignored",
     "roles_kept": "flows picked up without a SYN on a 5-tuple ended by FIN or RST less than "
     "closed_window seconds before: they keep the roles the ended flow had",
 }
@@ -180,7 +187,8 @@ class Flow:
     slot: unique among live flows, 0 .. max_flows-1, reused after the flow ends.
     packets / bytes: per side [client, server]; bytes = payload bytes delivered.
     gaps / overlaps: gap and overlap events of this flow.
-    end_reason: None while live, then "fin" | "rst" | "idle" | "evicted" | "capture_end".
+    end_reason: None while live, then "fin" | "rst" | "reused" | "idle" | "evicted" |
+    "capture_end".
     lent: some of its sides are held by a fast lane (see FlowTracker.reclaim).
     The reassembly state goes once the flow has ended; the fields above stay.
     """
@@ -256,6 +264,7 @@ class _Side:
         "held",
         "recent",
         "recent_len",
+        "resyn",
     )
 
     def __init__(self, flow, side):
@@ -271,6 +280,7 @@ class _Side:
         self.held = []
         self.recent = []
         self.recent_len = 0
+        self.resyn = None  # the last SYN at a new sequence number (FlowTracker._reused)
 
 
 def _diff_span(x, y):
@@ -570,6 +580,8 @@ class FlowTracker:
             flags &= ~(FIN | RST)
             if not pkt.payload and not flags & SYN:
                 return
+        if flags & SYN and s.started and self._reused(s, pkt, flags):
+            return
         if flags & RST:
             if not self._rst_acceptable(s, pkt):
                 self.counters["ignored_rst"] += 1
@@ -607,6 +619,34 @@ class FlowTracker:
                 side.expect = (side.base + side.next) & _MASK
             else:
                 side.expect = -1
+
+    def _reused(self, s, pkt, flags):
+        """A SYN on a started side: True if it was taken as a new connection's.
+
+        A SYN without ACK at another sequence number than the side's own SYN
+        is held back (a receiver in a synchronized state does not take it:
+        RFC 5961 §4); the peer's SYN-ACK acknowledging it shows the peer took
+        it: the flow ends "reused" and the two start a new flow. So a
+        connection the tracker could not see end (its RST lost with the
+        sender's last bytes) does not swallow the next one on its 5-tuple.
+        """
+        if not flags & ACK:
+            if (pkt.seq + 1) & _MASK == s.base:
+                return False  # its own SYN again
+            s.resyn = pkt
+            self.counters["syn_on_live_flow"] += 1
+            return True
+        flow = s.flow
+        peer = flow._sides[1 - s.side]
+        syn = peer.resyn
+        if syn is None or pkt.ack != (syn.seq + 1) & _MASK:
+            return False
+        flow.packets[s.side] -= 1  # both belong to the new flow
+        flow.packets[peer.side] -= 1
+        self._end_flow(flow, "reused")
+        self.packet(syn)
+        self.packet(pkt)
+        return True
 
     def _rst_acceptable(self, s, pkt):
         """Would the receiver take this RST (checksum aside)?
