@@ -18,6 +18,7 @@ from seamscan.flows import (
     CLIENT,
     COUNTERS,
     FIN,
+    HELD_CHUNK_COST,
     PSH,
     RST,
     SERVER,
@@ -28,7 +29,8 @@ from seamscan.flows import (
 MOD = 2**32
 
 # Stand-in for a decoded packet: the attribute names seamscan.decode provides.
-Pkt = namedtuple("Pkt", "proto src dst sport dport seq ack flags payload frame ts")
+Pkt = namedtuple("Pkt", "proto src dst sport dport seq ack flags payload frame ts cut sum_ok",
+                 defaults=(0, None))
 
 CONTROLLER = bytes([192, 0, 2, 10])  # building controller
 GATEWAY = bytes([198, 51, 100, 20])  # BACnet/HTTP gateway
@@ -586,10 +588,12 @@ def test_slots_unique_among_live_flows_and_reused():
 def test_global_hold_cap_relieves_the_flow_that_exceeds_it():
     one, two = Conv(c=(CONTROLLER, 50001)), Conv(c=(CONTROLLER, 50002))
     pk = [one.syn(), two.syn(), one.seg(CLIENT, 4, b"held"), two.seg(CLIENT, 4, b"HELD!")]
-    t, rec = run(pk, hold_total=8, finish=False)
+    # the total cap counts HELD_CHUNK_COST per held chunk beside its bytes
+    t, rec = run(pk, hold_total=HELD_CHUNK_COST + 8, finish=False)
     (gap,) = rec.of("gap")
     assert gap[1].client == two.ep[CLIENT] and gap[3:5] == (0, 4)
     assert t.counters["hold_total_gaps"] == 1 and t.counters["held_bytes_peak"] == 4
+    assert t.counters["held_memory_peak"] == 4 + HELD_CHUNK_COST
     t.finish()
     assert t.counters["gaps"] == 2 and t.counters["hold_total_gaps"] == 1
 
@@ -660,6 +664,7 @@ def test_counters_after_a_mixed_capture():
         "gaps": 1,
         "gap_bytes": 2,
         "held_bytes_peak": 2,
+        "held_memory_peak": 2 + HELD_CHUNK_COST,
     }
 
 

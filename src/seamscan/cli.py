@@ -81,12 +81,18 @@ def build_parser() -> argparse.ArgumentParser:
                     help="table format: also list flows without matches")
     lim = sc.add_argument_group("flow limits (every drop and eviction is counted in the summary)")
     lim.add_argument("--hold-bytes", type=_size_arg, default=65536, metavar="SIZE",
-                     help="out-of-order bytes held per flow before a hole becomes a gap "
-                     "(default 64KiB)")
+                     help="out-of-order payload bytes held per flow before a hole becomes a "
+                     "gap, as a device counts them (default 64KiB; the memory they take is "
+                     "bounded by --hold-total)")
     lim.add_argument("--hold-total", type=_size_arg, default=64 * 2**20, metavar="SIZE",
-                     help="out-of-order bytes held over all flows (default 64MiB)")
+                     help="memory for out-of-order bytes over all flows: each held segment "
+                     "counts its payload plus 208 bytes, so this is the most held bytes take "
+                     "however small the segments (default 64MiB)")
     lim.add_argument("--max-flows", type=int, default=65536, metavar="N",
-                     help="live flows; beyond it the longest-idle flow is evicted (default 65536)")
+                     help="live flows; beyond it the longest-idle flow is evicted (default "
+                     "65536). Each live flow costs up to about 24KB (the last 8KiB delivered "
+                     "per side, once in the tracker and once in the fast lane): about 1.6GB "
+                     "for a flood of 65536 flows")
     lim.add_argument("--tcp-idle", type=float, default=300.0, metavar="SECONDS",
                      help="capture seconds after which an idle TCP flow ends (default 300)")
     lim.add_argument("--udp-idle", type=float, default=60.0, metavar="SECONDS",

@@ -63,7 +63,7 @@ COUNTERS = ("frames", "decoded", "not_ip", "other_ip", "malformed", "unknown_lin
             "fragments")
 
 
-class Packet(namedtuple("Packet", "proto src dst sport dport seq ack flags payload frame ts")):
+class Packet(namedtuple("Packet", "proto src dst sport dport seq ack flags payload frame ts cut sum_ok", defaults=(0, None))):
     """A decoded TCP or UDP packet (a tuple; fields by name or position).
 
     ``proto`` 6 or 17; ``src``/``dst`` the IP addresses as 4 or 16 bytes;
@@ -141,13 +141,13 @@ class Decoder:
                             if doff >= 20 and 20 + doff <= total:
                                 c["decoded"] += 1
                                 return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
-                                                     buf[34 + doff:14 + total], frame_no, ts))
+                                                     buf[34 + doff:14 + total], frame_no, ts, 0, None))
                         elif proto == 17:
                             ulen = seq >> 16
                             if 8 <= ulen <= total - 20:
                                 c["decoded"] += 1
                                 return _new(Packet, (17, src, dst, sport, dport, 0, 0, 0,
-                                                     buf[42:34 + ulen], frame_no, ts))
+                                                     buf[42:34 + ulen], frame_no, ts, 0, None))
                 elif et == 0x86DD and n >= 68:
                     _, vtc, plen, proto, src, dst, sport, dport, seq, ack, doff, flags = \
                         _ETH_V6_L4(buf)
@@ -157,13 +157,13 @@ class Decoder:
                             if doff >= 20 and doff <= plen:
                                 c["decoded"] += 1
                                 return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
-                                                     buf[54 + doff:54 + plen], frame_no, ts))
+                                                     buf[54 + doff:54 + plen], frame_no, ts, 0, None))
                         elif proto == 17:
                             ulen = seq >> 16
                             if 8 <= ulen <= plen:
                                 c["decoded"] += 1
                                 return _new(Packet, (17, src, dst, sport, dport, 0, 0, 0,
-                                                     buf[62:54 + ulen], frame_no, ts))
+                                                     buf[62:54 + ulen], frame_no, ts, 0, None))
         try:
             # -- link layer: find the ethertype and where IP starts --------
             if linktype == 1:
@@ -280,7 +280,7 @@ class Decoder:
                     return None
                 c["decoded"] += 1
                 return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
-                                     buf[l4 + doff:end], frame_no, ts))
+                                     buf[l4 + doff:end], frame_no, ts, 0, None))
             if proto == 17:
                 if end - l4 < 8:
                     c["malformed"] += 1
@@ -291,7 +291,7 @@ class Decoder:
                     return None
                 c["decoded"] += 1
                 return _new(Packet, (17, src, dst, sport, dport, 0, 0, 0,
-                                     buf[l4 + 8:l4 + ulen], frame_no, ts))
+                                     buf[l4 + 8:l4 + ulen], frame_no, ts, 0, None))
             c["other_ip"] += 1
             return None
         except (IndexError, struct.error):

@@ -120,7 +120,8 @@ def _pcap(reader, buf, decoder, packet, progress, lane, base_frame=0) -> None:
                 continue
             da = so + alen
             side = packet(_new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                        ack, flags, buf[ps:pe], base_frame + frame, ts)))
+                                        ack, flags, buf[ps:pe], base_frame + frame, ts, 0,
+                                        None)))
             if relend is not None and side is not None:
                 relend(side)
         return frame

@@ -6,9 +6,10 @@ stream order, with stream offsets, and says where the holes are.
 
 A packet is a tuple of the fields proto (6 TCP, 17 UDP), src, dst (4 or 16
 bytes), sport, dport, seq, ack, flags (TCP flags byte), payload, frame
-(1-based record number) and ts (capture seconds), in this order and also
-readable by name: `seamscan.decode.Packet`, or any namedtuple of these
-fields (the hot path unpacks it, the rest reads names); ack is not used.
+(1-based record number), ts (capture seconds), cut and sum_ok, in this order
+and also readable by name: `seamscan.decode.Packet`, or any namedtuple of
+these fields (the hot path unpacks it, the rest reads names); ack is read
+only for a RST of a side with nothing seen.
 
 Contract, in short (the sink's side of it is in `Sink`):
 
@@ -37,14 +38,32 @@ Contract, in short (the sink's side of it is in `Sink`):
   cap. At a flow's end, bytes missing before a side's FIN are a gap too.
   Bytes before the first segment seen of a mid-stream side are not a gap; a
   segment more than 2**30 bytes from the next expected byte is dropped.
-* RST ends a flow at once; both FINs with everything before them delivered
-  end it "fin"; idle flows end by capture time (checked at most once per
-  capture second, oldest first); the `max_flows` cap evicts the longest-idle
-  flow. After a "fin" or "rst" end, for `closed_window` seconds of capture
-  time, packets of the same 5-tuple without payload and without SYN, and
-  segments whose payload lies wholly before where their side's stream
-  stopped (retransmissions), are ignored; a SYN starts a new flow, any other
-  segment with payload a mid-stream one.
+  `hold_bytes` counts payload bytes (the device's measure); `hold_total`
+  counts what holding costs here: payload plus HELD_CHUNK_COST per held
+  chunk, so it bounds the memory held however small the segments.
+* A RST or FIN changes a flow only where the receiver would take it. A RST
+  counts when its sequence number lies from the next byte expected of its
+  sender to one past the highest sequence number seen of it (see
+  `FlowTracker._rst_acceptable` for a sender with nothing seen); it then
+  ends the flow at once. A FIN counts at its own sequence number (after the
+  segment's payload) when that is not before the next byte expected (older
+  is stale), and only the side's first FIN. A FIN or RST whose checksum is
+  wrong (`sum_ok` False) loses its FIN/RST and is otherwise a plain segment
+  (captures on the sending host show offloaded segments unsummed, and no
+  data segment's checksum is checked); without payload it is ignored whole.
+  Every ignored FIN or RST is counted; none starts a side or moves one.
+* A SYN without ACK on a live flow at a new sequence number is held back;
+  when the peer's SYN-ACK acknowledges it, the flow ends "reused" and the
+  two packets start a new flow (a SYN alone is counted and ignored).
+* Both FINs with everything before them delivered end a flow "fin"; idle
+  flows end by capture time (checked at most once per capture second,
+  oldest first); the `max_flows` cap evicts the longest-idle flow. After a
+  "fin" or "rst" end, for `closed_window` seconds of capture time, packets
+  of the same 5-tuple without payload and without SYN, and segments whose
+  payload lies wholly before where their side's stream stopped
+  (retransmissions), are ignored; a SYN starts a new flow, any other
+  segment with payload a mid-stream one that keeps the roles the ended
+  flow had.
 
 Every drop and eviction is counted in `FlowTracker.counters` (see COUNTERS).
 """
@@ -70,6 +89,12 @@ _SWEEP_INTERVAL = 1.0
 # How long an ended TCP 5-tuple swallows payload-less packets: TIME-WAIT is
 # held for 2*MSL, 60 s on common stacks (common practice).
 CLOSED_WINDOW = 60.0
+# What a held out-of-order chunk costs beyond its payload bytes: the tuple
+# (offset, bytes, frame, ts), its int and float objects, the bytes object's
+# header and its list slot.  Measured with tracemalloc on CPython 3.11: 201 B
+# per chunk for chunks of 2 to 1,000 bytes; 208 B covers the allocator's
+# rounding of the bytes object to 8.  The total hold cap counts it.
+HELD_CHUNK_COST = 208
 
 COUNTERS: dict[str, str] = {
     "flows": "flows started (TCP and UDP)",
@@ -80,6 +105,8 @@ COUNTERS: dict[str, str] = {
     "ended_idle": "flows ended after tcp_idle / udp_idle seconds without a packet",
     "ended_evicted": "flows ended because the table held max_flows flows",
     "ended_capture_end": "flows still live at finish()",
+    "ended_reused": "flows ended because a new connection took their 5-tuple: a SYN at a new "
+    "sequence number, answered by the peer's SYN-ACK acknowledging it",
     "retransmitted_bytes": "payload bytes received again and dropped: they agreed with the "
     "bytes received first, or were too old to compare (older than the kept tail, or "
     "inside a range already given up as a gap)",
@@ -88,8 +115,11 @@ COUNTERS: dict[str, str] = {
     "gaps": "gap events (holes given up)",
     "gap_bytes": "bytes covered by gap events",
     "hold_cap_gaps": "gaps given up because a flow held more than hold_bytes",
-    "hold_total_gaps": "gaps given up because all flows held more than hold_total",
+    "hold_total_gaps": "gaps given up because the memory held by all flows (held bytes plus "
+    "HELD_CHUNK_COST per held chunk) exceeded hold_total",
     "held_bytes_peak": "most out-of-order bytes held at once between packets, all flows",
+    "held_memory_peak": "most memory held for out-of-order bytes at once between packets, all "
+    "flows: held bytes plus HELD_CHUNK_COST per held chunk (what hold_total bounds)",
     "ignored_after_close": "packets of a 5-tuple that ended by FIN or RST, ignored: no payload "
     "and no SYN, or payload wholly before where that side's stream stopped",
     "ignored_protocol": "packets that are neither TCP nor UDP, ignored",
@@ -98,6 +128,20 @@ COUNTERS: dict[str, str] = {
     "out_of_window_segments": "TCP segments more than 2**30 bytes from the next expected "
     "byte, dropped",
     "closed_forgotten": "ended 5-tuples forgotten early because max_flows of them were kept",
+    "ignored_rst": "RSTs ignored: outside what the receiver would accept (a sequence number "
+    "before the next byte expected from the sender or beyond the highest one seen; a sender "
+    "with no byte seen: an ACK that does not acknowledge a byte seen of the receiver)",
+    "ignored_rst_checksum": "RSTs with a wrong TCP checksum: the RST ignored, any payload taken as "
+    "a plain segment's",
+    "ignored_fin": "FINs ignored: their sequence number lies before the next byte expected "
+    "from that side (the receiver already has that sequence number as data), or another FIN "
+    "of that side came first at another place",
+    "ignored_fin_checksum": "FINs with a wrong TCP checksum: the FIN ignored, any payload taken as "
+    "a plain segment's",
+    "syn_on_live_flow": "SYNs without ACK at a new sequence number on a live flow: held back "
+    "until the peer's SYN-ACK acknowledges one (then the flow ends \"reused\"), else ignored",
+    "roles_kept": "flows picked up without a SYN on a 5-tuple ended by FIN or RST less than "
+    "closed_window seconds before: they keep the roles the ended flow had",
 }
 
 _start = itemgetter(0)
@@ -143,7 +187,8 @@ class Flow:
     slot: unique among live flows, 0 .. max_flows-1, reused after the flow ends.
     packets / bytes: per side [client, server]; bytes = payload bytes delivered.
     gaps / overlaps: gap and overlap events of this flow.
-    end_reason: None while live, then "fin" | "rst" | "idle" | "evicted" | "capture_end".
+    end_reason: None while live, then "fin" | "rst" | "reused" | "idle" | "evicted" |
+    "capture_end".
     lent: some of its sides are held by a fast lane (see FlowTracker.reclaim).
     The reassembly state goes once the flow has ended; the fields above stay.
     """
@@ -219,6 +264,7 @@ class _Side:
         "held",
         "recent",
         "recent_len",
+        "resyn",
     )
 
     def __init__(self, flow, side):
@@ -234,6 +280,7 @@ class _Side:
         self.held = []
         self.recent = []
         self.recent_len = 0
+        self.resyn = None  # the last SYN at a new sequence number (FlowTracker._reused)
 
 
 def _diff_span(x, y):
@@ -292,7 +339,8 @@ class FlowTracker:
         self._closed = OrderedDict()
         self._free = []  # freed slots
         self._slots = 0  # slots ever handed out
-        self._held_total = 0
+        self._held_total = 0  # out-of-order bytes held, all flows
+        self._held_chunks = 0  # and the chunks they are held in
         self._tail_cap = 2 * keep_bytes
         self._sweep_at = float("-inf")
         # A fast lane (seamscan.fastpath) may hold some sides' reassembly
@@ -317,7 +365,7 @@ class FlowTracker:
         """Account one decoded packet; emits the sink events it makes due.
         Returns the sender's side (its `flow` may have ended), or None if the
         packet was ignored."""
-        proto, src, dst, sport, dport, seq, _ack, flags, payload, frame, ts = pkt
+        proto, src, dst, sport, dport, seq, _ack, flags, payload, frame, ts, _cut, _sum_ok = pkt
         if ts >= self._sweep_at:
             self._sweep(ts)
         s = self._sides.get((src, sport, dst, dport, proto))
@@ -390,14 +438,21 @@ class FlowTracker:
         if proto == TCP:
             flags = pkt.flags
             record = self._closed.get(key)
+            kept = False
             if record is not None:
-                if record[0] > pkt.ts and not flags & SYN and self._stale(pkt, here, record):
-                    self.counters["ignored_after_close"] += 1
-                    return None
+                if record[0] > pkt.ts and not flags & SYN:
+                    if self._stale(pkt, here, record):
+                        self.counters["ignored_after_close"] += 1
+                        return None
+                    # The same connection going on (say after a RST the
+                    # receiver ignored): the roles it had, not the port rule.
+                    kept = True
+                    sender_is_client = here == record[1]
+                    self.counters["roles_kept"] += 1
                 del self._closed[key]
             if flags & SYN:
                 sender_is_client = not flags & ACK
-            elif pkt.sport != pkt.dport:
+            elif not kept and pkt.sport != pkt.dport:
                 sender_is_client = pkt.sport > pkt.dport
         if len(self._tcp_lru) + len(self._udp_lru) >= self.max_flows:
             self._evict()
@@ -513,6 +568,27 @@ class FlowTracker:
         flow = s.flow
         flags = pkt.flags
         seq = pkt.seq
+        if flags & (FIN | RST) and pkt.sum_ok is False:
+            # A wrong checksum takes the FIN or RST away, not the bytes: a
+            # capture on the sending host shows offloaded segments unsummed,
+            # and no data segment's checksum is checked either.
+            counters = self.counters
+            if flags & RST:
+                counters["ignored_rst_checksum"] += 1
+            if flags & FIN:
+                counters["ignored_fin_checksum"] += 1
+            flags &= ~(FIN | RST)
+            if not pkt.payload and not flags & SYN:
+                return
+        if flags & SYN and s.started and self._reused(s, pkt, flags):
+            return
+        if flags & RST:
+            if not self._rst_acceptable(s, pkt):
+                self.counters["ignored_rst"] += 1
+                return
+            if not pkt.payload:
+                self._end_flow(flow, "rst")
+                return
         if not s.started:
             s.started = True
             s.base = (seq + 1) & _MASK if flags & SYN else seq
@@ -523,10 +599,12 @@ class FlowTracker:
         payload = pkt.payload
         if -_WINDOW <= d <= _WINDOW:
             off = s.next + d
-            if payload:
-                self._receive(s, off, payload, pkt.frame, pkt.ts)
+            # The FIN first: bytes held beyond it are dropped before the
+            # payload's arrival can deliver them.
             if flags & FIN:
                 self._fin(s, off + len(payload), pkt.frame, pkt.ts)
+            if payload:
+                self._receive(s, off, payload, pkt.frame, pkt.ts)
         else:
             self.counters["out_of_window_segments"] += 1
         if flags & RST:
@@ -541,6 +619,77 @@ class FlowTracker:
                 side.expect = (side.base + side.next) & _MASK
             else:
                 side.expect = -1
+
+    def _reused(self, s, pkt, flags):
+        """A SYN on a started side: True if it was taken as a new connection's.
+
+        A SYN without ACK at another sequence number than the side's own SYN
+        is held back (a receiver in a synchronized state does not take it:
+        RFC 5961 §4); the peer's SYN-ACK acknowledging it shows the peer took
+        it: the flow ends "reused" and the two start a new flow. So a
+        connection the tracker could not see end (its RST lost with the
+        sender's last bytes) does not swallow the next one on its 5-tuple.
+        """
+        if not flags & ACK:
+            if (pkt.seq + 1) & _MASK == s.base:
+                return False  # its own SYN again
+            s.resyn = pkt
+            self.counters["syn_on_live_flow"] += 1
+            return True
+        flow = s.flow
+        peer = flow._sides[1 - s.side]
+        syn = peer.resyn
+        if syn is None or pkt.ack != (syn.seq + 1) & _MASK:
+            return False
+        flow.packets[s.side] -= 1  # both belong to the new flow
+        flow.packets[peer.side] -= 1
+        self._end_flow(flow, "reused")
+        self.packet(syn)
+        self.packet(pkt)
+        return True
+
+    def _rst_acceptable(self, s, pkt):
+        """Would the receiver take this RST (checksum aside)?
+
+        RFC 9293 §3.10.7.4 takes a RST whose sequence number lies in the
+        receive window, RFC 5961 §3.2 only one exactly at RCV.NXT. A capture
+        shows neither the receiver's RCV.NXT nor its window, so the window is
+        what the tracker knows the sender sent: from the next byte expected
+        of the sender to one past the highest byte seen of it (held bytes,
+        and the FIN's own sequence number). A genuine RST carries the
+        sender's SND.NXT, which lies there when the sender's segments were
+        captured. A sender with nothing seen (a RST answering a SYN, or a
+        capture of one direction) has no window: its RST counts when its ACK
+        lies from the receiver's first sequence number seen (its SYN's + 1)
+        to one past its highest seen (RFC 9293 §3.10.7.3, SYN-SENT: the ACK
+        must acknowledge the SYN and nothing never sent), or when nothing at
+        all is known of the flow (its first packet: nothing to lose).
+        """
+        if s.started:
+            d = (pkt.seq - s.base - s.next) & _MASK
+            return d <= self._top(s) - s.next
+        flow = s.flow
+        peer = flow._sides[1 - s.side]
+        if not peer.started:
+            return True
+        if not pkt.flags & ACK:
+            return False
+        if flow.lent:
+            self.reclaim(flow, peer)
+        a = (pkt.ack - peer.base - peer.next) & _MASK
+        if a >= _HALF:
+            a -= _MOD
+        return -peer.next <= a <= self._top(peer) - peer.next
+
+    @staticmethod
+    def _top(s):
+        """Stream offset one past the highest sequence number seen of a started side."""
+        top = s.next
+        if s.held:
+            top = max(top, s.held[-1][0] + len(s.held[-1][1]))
+        if s.fin is not None:
+            top = max(top, s.fin + 1)
+        return top
 
     def _receive(self, s, off, p, frame, ts):
         """Place payload `p` at stream offset `off` of side `s`."""
@@ -577,10 +726,18 @@ class FlowTracker:
         flow = s.flow
         if flow._held > self.hold_bytes:
             self._relieve(s, "hold_cap_gaps", lambda: flow._held > self.hold_bytes)
-        if self._held_total > self.hold_total:
-            self._relieve(s, "hold_total_gaps", lambda: self._held_total > self.hold_total)
-        if self._held_total > self.counters["held_bytes_peak"]:
-            self.counters["held_bytes_peak"] = self._held_total
+        if self._held_memory() > self.hold_total:
+            self._relieve(s, "hold_total_gaps", lambda: self._held_memory() > self.hold_total)
+        counters = self.counters
+        if self._held_total > counters["held_bytes_peak"]:
+            counters["held_bytes_peak"] = self._held_total
+        memory = self._held_memory()
+        if memory > counters["held_memory_peak"]:
+            counters["held_memory_peak"] = memory
+
+    def _held_memory(self):
+        """What the held out-of-order bytes cost, all flows (what hold_total bounds)."""
+        return self._held_total + HELD_CHUNK_COST * self._held_chunks
 
     def _compare_delivered(self, s, off, p, spans):
         """Check bytes `p` at `off` (< next) against the delivered tail; add conflicts to spans."""
@@ -609,6 +766,7 @@ class FlowTracker:
             i += 1
         pos = off
         added = 0
+        chunks = 0
         while pos < end:
             if i < len(held) and held[i][0] <= pos:
                 start, data = held[i][0], held[i][1]
@@ -620,10 +778,12 @@ class FlowTracker:
                 stop = min(end, held[i][0]) if i < len(held) else end
                 held.insert(i, (pos, p[pos - off : stop - off], frame, ts))
                 added += stop - pos
+                chunks += 1
             pos = stop
             i += 1
         s.flow._held += added
         self._held_total += added
+        self._held_chunks += chunks
 
     def _count_compared(self, n, off, span, spans):
         """Account n compared bytes at off; a disagreeing span goes to spans (merged if adjacent)."""
@@ -687,6 +847,7 @@ class FlowTracker:
             del held[:k]
             s.flow._held -= done
             self._held_total -= done
+            self._held_chunks -= k
 
     def _skip_hole(self, s, cause):
         """Give up the hole before the first held chunk, then deliver what follows it."""
@@ -715,10 +876,15 @@ class FlowTracker:
                 self._skip_hole(side, cause)
 
     def _fin(self, s, at, frame, ts):
-        """Record the first FIN of a side at stream offset `at`; drop held bytes beyond it."""
-        if s.fin is not None:
+        """Record the first FIN of a side at stream offset `at`; drop held bytes beyond it.
+
+        A FIN before `next` is stale (the receiver has that sequence number
+        as data already), one at another place than the side's first FIN a
+        contradiction: both are ignored and counted."""
+        if s.fin is not None or at < s.next:
+            if at != s.fin:
+                self.counters["ignored_fin"] += 1
             return
-        at = max(at, s.next)
         s.fin, s.fin_frame, s.fin_ts = at, frame, ts
         held = s.held
         dropped = 0
@@ -729,6 +895,7 @@ class FlowTracker:
                 dropped += start + len(data) - at
                 break
             dropped += len(data)
+            self._held_chunks -= 1
         if dropped:
             self.counters["beyond_fin_bytes"] += dropped
             s.flow._held -= dropped
