@@ -35,6 +35,10 @@ sent the bytes, end exclusive; frame is the 1-based record number, in its
 file, of the packet that completed the match (carried its last byte; with
 reordered segments that can precede the packet that filled the hole).
 
+Several captures are one continuous capture, read in the order given (the
+files of a rotated ring): flows and streams carry on from one file into the
+next; --each-file replays each on its own.
+
 Examples:
   seamscan scan pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml
   seamscan scan lab.pcapng --table device.seam --format jsonl -o out.jsonl
