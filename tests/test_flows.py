@@ -28,7 +28,8 @@ from seamscan.flows import (
 MOD = 2**32
 
 # Stand-in for a decoded packet: the attribute names seamscan.decode provides.
-Pkt = namedtuple("Pkt", "proto src dst sport dport seq ack flags payload frame ts")
+Pkt = namedtuple("Pkt", "proto src dst sport dport seq ack flags payload frame ts cut sum_ok",
+                 defaults=(0, None))
 
 CONTROLLER = bytes([192, 0, 2, 10])  # building controller
 GATEWAY = bytes([198, 51, 100, 20])  # BACnet/HTTP gateway
@@ -103,7 +104,7 @@ class Recorder:
         self._check(flow)
         self.events.append(("data", flow, side, offset, bytes(payload), frame, datagram))
 
-    def gap(self, flow, side, offset, length, frame, ts):
+    def gap(self, flow, side, offset, length, frame, ts, reason):
         self._check(flow)
         assert length > 0
         self.events.append(("gap", flow, side, offset, length, frame))
@@ -659,6 +660,7 @@ def test_counters_after_a_mixed_capture():
         "retransmitted_bytes": 3,
         "gaps": 1,
         "gap_bytes": 2,
+        "flow_end_gaps": 1,
         "held_bytes_peak": 2,
     }
 

@@ -281,7 +281,8 @@ int sf_lane_run(sf_lane *L, sf_run *r)
         if (caplen > r->limit || caplen > r->len - pos - 16)
             break;
         whole = (uint64_t)sec * r->units + frac;
-        if (whole >= ((uint64_t)1 << 53) || !r->ethernet || !sf__decode(f, caplen, &k))
+        if (whole >= ((uint64_t)1 << 53) || frac >= r->units || !r->ethernet ||
+            !sf__decode(f, caplen, &k))
             break;
         ts = (double)whole / (double)r->units; /* as sf_pcap_records */
         if (ts >= r->sweep_at)

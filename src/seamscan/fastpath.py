@@ -36,8 +36,11 @@ TCP flags, address length, source port, destination port, seq, ack, offset
 of the source address (the destination follows it), payload start and end
 (for kind 1: the frame's start and end), the header's seconds and fraction,
 whether ``ts`` is exact, ``ts``.  ``ts`` equals the reader's
-``(sec * units + frac) / units`` whenever the numerator is below 2**53;
-otherwise Python computes it (the lane stops at such a record).
+``(sec * units + frac) / units`` whenever the numerator is below 2**53 and
+the fraction below ``units``; otherwise Python computes it (the lane stops
+at such a record).  Kind 0 is never a frame cut by the snap length (its
+``Packet.cut`` is 0) nor a TCP segment with FIN or RST (whose checksum the
+decoder verifies), so its ``Packet.sum_ok`` is None.
 
 Progress is reported every 4096 records or so, not every 4096 exactly.
 """
@@ -116,7 +119,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
                 continue
             da = so + alen
             side = packet(_new(Packet, (proto, buf[so:da], buf[da:da + alen], sport, dport, seq,
-                                        ack, flags, buf[ps:pe], frame, ts)))
+                                        ack, flags, buf[ps:pe], frame, ts, 0, None)))
             if relend is not None and side is not None:
                 relend(side)
         return frame

@@ -18,11 +18,14 @@ import csv
 import json
 import sys
 
+from seamscan.decode import FATES
+
 MATCH_FIELDS = ("sig", "transport", "client_ip", "client_port", "server_ip", "server_port",
                 "side", "start", "end", "file", "frame", "ts")
 
-# Summary: frame fates, then drops / evictions grouped by what caused them.
-FRAME_FATES = ("decoded", "not_ip", "other_ip", "malformed", "unknown_link", "fragments")
+# Summary: frame fates (each frame read in exactly one: they add up to
+# ``frames``), then drops / evictions grouped by what caused them.
+FRAME_FATES = FATES
 
 
 def summary_record(counters, elapsed: float) -> dict:

@@ -145,10 +145,10 @@ class ScanSink:
         if n >= _BATCH_ITEMS or nbytes >= _BATCH_BYTES:
             self.flush()
 
-    def gap(self, flow, side, offset, length, frame, ts):
+    def gap(self, flow, side, offset, length, frame, ts, reason):
         self.next_offset[2 * flow.slot + side] = -1
         self._events.append((self.n, self._range_record("gap", flow, side, offset, length,
-                                                        frame, ts)))
+                                                        frame, ts, reason)))
 
     def overlap(self, flow, side, offset, length, frame, ts):
         self._events.append((self.n, self._range_record("overlap", flow, side, offset, length,
@@ -180,9 +180,15 @@ class ScanSink:
         self.by_slot[flow.slot] = flow
         return c
 
-    def _range_record(self, kind, flow, side, offset, length, frame, ts):
-        return {"type": kind, **self._fields(flow), "side": SIDE_NAMES[side], "start": offset,
-                "end": offset + length, "file": self.path, "frame": frame, "ts": ts}
+    def _range_record(self, kind, flow, side, offset, length, frame, ts, reason=None):
+        rec = {"type": kind, **self._fields(flow), "side": SIDE_NAMES[side], "start": offset,
+               "end": offset + length}
+        if reason is not None:  # a gap's
+            rec["reason"] = reason
+        rec["file"] = self.path
+        rec["frame"] = frame
+        rec["ts"] = ts
+        return rec
 
     def _fields(self, flow):
         c = self.ctx.get(flow)
