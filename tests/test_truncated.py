@@ -517,3 +517,27 @@ def test_frame_fates_add_up_in_every_format(tmp_path, fast):
     total = int(line.split(" frames (", 1)[0].split()[-1])
     assert total == 2 * n
     assert sum(int(part.split()[0]) for part in inside.split(", ")) == total
+
+
+@pytest.mark.parametrize("order", [[0, 1], [1, 0]], ids=["in_order", "fin_first"])
+def test_cut_fin_carrying_data_is_honoured_where_the_segment_ends(tmp_path, order):
+    # the FIN's sequence number is after the segment's whole payload (RFC 9293
+    # section 3.4), captured or not: the cut bytes are a gap, the FIN counts
+    conv = Conversation(clock=Clock())
+    conv.handshake()
+    first, last = REQUEST[:40], REQUEST[40:]
+    pieces = [(0, first, "PA"), (40, last, "FPA")]
+    for i in order:
+        conv.segment("client", *pieces[i])
+    conv.next[0] = len(REQUEST) + 1
+    conv._tcp(1, 0, "FA")
+    conv.next[1] += 1
+    conv.ack("client")
+    path = tmp_path / "finData.pcap"
+    craft.write_pcap(path, conv.packets, snaplen=54 + 60)  # 60 payload bytes a frame
+    result = replay_both(path)
+    assert [(g["start"], g["end"], g["reason"]) for g in of_type(result, "gap")] == [
+        (100, len(REQUEST), "not_captured")]
+    (flow,) = of_type(result, "flow")
+    assert flow["end"] == "fin" and flow["client_bytes"] == 100
+    assert ("s1", "client", 42, 48, 4 + order.index(1)) in hits(result)
