@@ -271,6 +271,7 @@ def test_counters_present_from_the_start():
     assert Decoder().counters == {name: 0 for name in (
         "frames", "decoded", "not_ip", "other_ip", "malformed", "unknown_link", "fragments",
         "headers_cut", "truncated_packets", "truncated_fragments", "ipv4_total_zero",
+        "invalid_timestamps",
         "frag_reassembled", "frag_overlaps", "frag_timeouts", "frag_evicted", "frag_too_big",
         "frag_too_many", "frag_bad")}
 

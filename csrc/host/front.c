@@ -133,8 +133,11 @@ size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint
         sf_pkt k;
         memset(r, 0, SF_REC_SIZE);
         /* A TCP segment with FIN or RST goes to the Python decoder, which
-         * verifies its checksum (Packet.sum_ok); they are about two per flow. */
-        if (ethernet && sf__decode(h + 16, caplen, &k) && !(k.proto == 6 && (k.flags & 5u))) {
+         * verifies its checksum (Packet.sum_ok); they are about two per flow.
+         * So does a record whose fraction of a second is out of range (the
+         * decoder counts it). */
+        if (ethernet && frac < units && sf__decode(h + 16, caplen, &k) &&
+            !(k.proto == 6 && (k.flags & 5u))) {
             put_decoded(r, &k, (uint32_t)(pos + 16));
             nfast++;
         } else {

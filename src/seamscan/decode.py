@@ -75,7 +75,8 @@ Other counters (not fates): ``frames`` (frames given to ``decode``);
 snap length; they count as ``decoded``); ``truncated_fragments`` (fragments
 dropped because they were cut short; they count as ``fragments``);
 ``ipv4_total_zero`` (IPv4 TCP segments whose total length 0 was read as
-"to the end of the frame"); and ``frag_*``, the defragmenter's counters (see ``ipfrag``): ``reassembled``,
+"to the end of the frame"); ``invalid_timestamps`` (frames whose time is a
+``capture.InvalidStamp``: a fraction of a second out of range); and ``frag_*``, the defragmenter's counters (see ``ipfrag``): ``reassembled``,
 ``overlaps``, ``timeouts``, ``evicted``, ``too_big``, ``too_many``, ``bad``.
 """
 
@@ -86,11 +87,12 @@ import socket
 import struct
 from collections import namedtuple
 
+from seamscan.capture import InvalidStamp
 from seamscan.ipfrag import Defragmenter
 
 COUNTERS = ("frames", "decoded", "not_ip", "other_ip", "malformed", "unknown_link",
             "headers_cut", "fragments", "truncated_packets", "truncated_fragments",
-            "ipv4_total_zero")
+            "ipv4_total_zero", "invalid_timestamps")
 
 # The fates of a frame: each frame read counts in exactly one of them.
 FATES = ("decoded", "not_ip", "other_ip", "malformed", "unknown_link", "headers_cut",
@@ -185,6 +187,8 @@ class Decoder:
         """Decode one frame; ``None`` (counted) unless it is TCP or UDP."""
         c = self._counts
         c["frames"] += 1
+        if ts.__class__ is InvalidStamp:
+            c["invalid_timestamps"] += 1
         if linktype == 1:  # the common case in one struct call; anything unusual falls through
             n = len(buf)
             if n >= 48:

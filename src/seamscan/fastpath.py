@@ -51,7 +51,7 @@ import struct
 from operator import itemgetter
 
 from seamscan._seamcore import ffi, lib
-from seamscan.capture import _PCAP_MAGICS, CaptureReader, pcap_header
+from seamscan.capture import _PCAP_MAGICS, CaptureReader, pcap_header, stamp, stamp_of
 from seamscan.decode import Packet
 
 _REC = struct.Struct("=BBBBHHIIIIIIII d")
@@ -105,11 +105,10 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
 
     def take(recs, buf, frame):
         """Hand framed records to the tracker; the last frame number."""
-        for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, exact,
-             ts) in recs:
+        for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, _exact,
+             _ts) in recs:  # the time as the reader gives it (a Stamp): from sec, frac
             frame += 1
-            if not exact:
-                ts = (sec * units + frac) / units
+            ts = stamp(sec, frac, units)
             if lane is not None:
                 lane.cur = frame
             if kind:  # a frame C does not decode: lending its flow would not help
@@ -176,7 +175,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
         frame += 1
         if lane is not None:
             lane.cur = frame
-        pkt = decode(frame, (sec * units + frac) / units, linktype, data)
+        pkt = decode(frame, stamp(sec, frac, units), linktype, data)
         if pkt is not None:
             side = packet(pkt)
             if relend is not None and side is not None:
@@ -184,7 +183,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
 
 
 _RUN_STOP, _RUN_FULL = lib.SF_RUN_STOP, lib.SF_RUN_FULL
-_TOUCH = struct.Struct("=I4xQd")  # SF_TOUCH_SIZE: flow slot, frame, ts
+_TOUCH = struct.Struct("=I4xQdq")  # SF_TOUCH_SIZE: flow slot, frame, ts, ts_ns
 # sf_side_state: next, sink_next, packets, bytes, expect, tail_len, proto,
 # side_code, transport, pad, port, pad2, cflags (and padding to 8 bytes)
 _STATE = struct.Struct("=QQQQIIBBBBHHI4x")
@@ -238,6 +237,7 @@ class Lane:
         self._touched = ffi.buffer(self.touched)
         self._frame = ffi.new("uint64_t *")
         self._ts = ffi.new("double *")
+        self._ns = ffi.new("int64_t *")
         self._r = bytearray(ffi.sizeof("sf_run"))
         self.r = ffi.from_buffer("sf_run *", self._r)
         self.rec = ffi.new("uint8_t[]", _REC.size)
@@ -377,9 +377,9 @@ class Lane:
             flow.lent = False
         if side is None:
             mine = self.pending.pop(flow, -1)
-            if lib.sf_lane_untouch(self.c, flow.slot, self._frame, self._ts) and \
+            if lib.sf_lane_untouch(self.c, flow.slot, self._frame, self._ts, self._ns) and \
                     self._frame[0] > mine:
-                flow.last_ts = self._ts[0]
+                flow.last_ts = stamp_of(self._ts[0], self._ns[0])
             if self.owner[flow.slot] is flow:
                 self.owner[flow.slot] = None
 
@@ -396,11 +396,11 @@ class Lane:
         n = lib.sf_lane_touched(self.c, self.touched)
         if n:
             owner = self.owner
-            for fslot, frame, ts in _TOUCH.iter_unpack(self._touched[:n * _TOUCH.size]):
+            for fslot, frame, ts, ns in _TOUCH.iter_unpack(self._touched[:n * _TOUCH.size]):
                 flow = owner[fslot]
                 if frame > pending.get(flow, -1):
                     pending[flow] = frame
-                    flow.last_ts = ts
+                    flow.last_ts = stamp_of(ts, ns)
         if pending:
             tcp, udp = self.tracker._tcp_lru, self.tracker._udp_lru
             for flow, _frame in sorted(pending.items(), key=_second):

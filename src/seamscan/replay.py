@@ -38,7 +38,7 @@ _BATCH_BYTES = 1 << 20
 # Room past _BATCH_BYTES: a batch is scanned once it holds _BATCH_BYTES, so
 # the last payload added (an IP datagram: 64 KiB at most) always fits.
 _DATA_CAP = _BATCH_BYTES + (1 << 18)
-META = struct.Struct("=QdI4x")  # per batch item: frame, ts, slot (SF_META_SIZE)
+META = struct.Struct("=QdI4xq")  # per batch item: frame, ts, slot, ts_ns (SF_META_SIZE)
 _META_SIZE = META.size
 _META_PACK = META.pack_into
 _META_UNPACK = META.unpack_from
@@ -138,7 +138,7 @@ class ScanSink:
         n = self.n
         _PACK(self._items, n * _ITEM_SIZE, slot, flags, sc, tr, port, cflags, size, 0, nbytes,
               offset)
-        _META_PACK(self._meta, n * _META_SIZE, frame, ts, slot)
+        _META_PACK(self._meta, n * _META_SIZE, frame, ts, slot, ts.ns)
         self._data[nbytes:nbytes + size] = payload
         self.n = n = n + 1
         self.nbytes = nbytes = nbytes + size
@@ -174,7 +174,8 @@ class ScanSink:
         slot = 2 * flow.slot
         c = tuple((slot + side, side + 1, tcode, port, cflags,
                    {"type": "match", "sig": None, **fields, "side": SIDE_NAMES[side],
-                    "start": 0, "end": 0, "file": self.path, "frame": 0, "ts": 0.0})
+                    "start": 0, "end": 0, "file": self.path, "frame": 0, "ts": 0.0,
+                    "ts_ns": 0})
                   for side in (0, 1)) + (fields,)
         self.ctx[flow] = c
         self.by_slot[flow.slot] = flow
@@ -187,7 +188,8 @@ class ScanSink:
             rec["reason"] = reason
         rec["file"] = self.path
         rec["frame"] = frame
-        rec["ts"] = ts
+        rec["ts"] = float(ts)
+        rec["ts_ns"] = ts.ns
         return rec
 
     def _fields(self, flow):
@@ -224,7 +226,7 @@ class ScanSink:
                 due = events[ei][0] if ei < len(events) else n
             if item != last:
                 last = item
-                frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
+                frame, ts, slot, ts_ns = _META_UNPACK(meta, item * _META_SIZE)
                 fslot = slot >> 1
                 flow = by_slot[fslot] if fslot not in retired else self._owner(fslot, item)
                 template = ctx[flow][slot & 1][5]
@@ -235,6 +237,7 @@ class ScanSink:
             record["end"] = end
             record["frame"] = frame
             record["ts"] = ts
+            record["ts_ns"] = ts_ns
             emit(record)
         for _pos, ev in events[ei:]:
             self._event(ev)
@@ -267,8 +270,10 @@ def fastpath_enabled() -> bool:
 
 
 def flow_record(flow, fields, path) -> dict:
-    return {"type": "flow", **fields, "file": path, "first_ts": flow.first_ts,
-            "last_ts": flow.last_ts, "client_packets": flow.packets[CLIENT],
+    first, last = flow.first_ts, flow.last_ts
+    return {"type": "flow", **fields, "file": path, "first_ts": float(first),
+            "first_ts_ns": first.ns, "last_ts": float(last), "last_ts_ns": last.ns,
+            "client_packets": flow.packets[CLIENT],
             "server_packets": flow.packets[1], "client_bytes": flow.bytes[CLIENT],
             "server_bytes": flow.bytes[1], "matches": flow.matches, "gaps": flow.gaps,
             "overlaps": flow.overlaps, "end": flow.end_reason}
