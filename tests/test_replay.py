@@ -60,7 +60,7 @@ from craft import Clock, Conversation, Datagrams  # noqa: E402
 
 MOD = 2**32
 MATCH_FIELDS = ["sig", "transport", "client_ip", "client_port", "server_ip", "server_port",
-                "side", "start", "end", "file", "frame", "ts"]
+                "side", "start", "end", "file", "frame", "ts", "ts_ns"]
 TIMING_FIELDS = ("elapsed_s", "frames_per_s", "mb_per_s")
 
 

@@ -21,7 +21,7 @@ import sys
 from seamscan.decode import FATES
 
 MATCH_FIELDS = ("sig", "transport", "client_ip", "client_port", "server_ip", "server_port",
-                "side", "start", "end", "file", "frame", "ts")
+                "side", "start", "end", "file", "frame", "ts", "ts_ns")
 
 # Summary: frame fates (each frame read in exactly one: they add up to
 # ``frames``), then drops / evictions grouped by what caused them.
@@ -33,7 +33,9 @@ def summary_record(counters, elapsed: float) -> dict:
     drops = {k: c.get(k, 0) for k in sorted(c) if k.startswith("frag_") and k != "frag_reassembled"}
     flows = {k: c.get(k, 0) for k in sorted(c) if k.startswith(("ended_", "hold_", "gap",
                                                                 "retransmitted",
-                                                                "overlap", "ignored"))}
+                                                                "overlap", "ignored",
+                                                                "not_captured_",
+                                                                "flow_end_"))}
     rest = {k: v for k, v in sorted(c.items())
             if k not in drops and k not in flows and k not in FRAME_FATES
             and k not in ("frames", "bytes_scanned", "matches", "files", "damaged_files",
