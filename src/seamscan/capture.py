@@ -269,6 +269,7 @@ class CaptureReader:
         """Records of a classic pcap file; ``buf`` holds its 24-byte header
         and possibly more."""
         linktype, units, limit, unpack = pcap_header(buf)
+        scale = 1_000_000_000 // units  # classic pcap: units is 10**6 or 10**9
         base = 0  # stream offset of buf[0]
         pos = 24
         frame = 0
@@ -278,7 +279,12 @@ class CaptureReader:
                 return
             buf, pos, base, sec, frac, data = step
             frame += 1
-            yield frame, stamp(sec, frac, units), linktype, data
+            if frac < units:  # stamp(sec, frac, units), inline: the reader's hot path
+                ts = Stamp((sec * units + frac) / units)
+                ts.ns = sec * 1_000_000_000 + frac * scale
+            else:
+                ts = stamp(sec, frac, units)
+            yield frame, ts, linktype, data
 
     def _pcap_record(self, buf, pos, base, frame, unpack, limit):
         """One record at ``buf[pos:]`` (refilling the buffer as needed):

@@ -51,7 +51,7 @@ import struct
 from operator import itemgetter
 
 from seamscan._seamcore import ffi, lib
-from seamscan.capture import _PCAP_MAGICS, CaptureReader, pcap_header, stamp, stamp_of
+from seamscan.capture import _PCAP_MAGICS, CaptureReader, Stamp, pcap_header, stamp, stamp_of
 from seamscan.decode import Packet
 
 _REC = struct.Struct("=BBBBHHIIIIIIII d")
@@ -90,6 +90,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
     of each buffer framed (and mostly decoded) in C, and with a lane, the
     lane's packets delivered in C."""
     linktype, units, limit, unpack = pcap_header(buf)
+    scale = 1_000_000_000 // units  # classic pcap: units is 10**6 or 10**9
     big = int(_PCAP_MAGICS[buf[:4]][0] == ">")
     ethernet = int(linktype == 1)
     decode = decoder.decode
@@ -105,10 +106,14 @@ def _pcap(reader, buf, decoder, packet, progress, lane) -> None:
 
     def take(recs, buf, frame):
         """Hand framed records to the tracker; the last frame number."""
-        for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, _exact,
-             _ts) in recs:  # the time as the reader gives it (a Stamp): from sec, frac
+        for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, exact,
+             ts) in recs:
             frame += 1
-            ts = stamp(sec, frac, units)
+            if exact:  # the reader's Stamp (C's ts is its float; frac < units)
+                ts = Stamp(ts)
+                ts.ns = sec * 1_000_000_000 + frac * scale
+            else:
+                ts = stamp(sec, frac, units)
             if lane is not None:
                 lane.cur = frame
             if kind:  # a frame C does not decode: lending its flow would not help
