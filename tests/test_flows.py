@@ -105,7 +105,7 @@ class Recorder:
         self._check(flow)
         self.events.append(("data", flow, side, offset, bytes(payload), frame, datagram))
 
-    def gap(self, flow, side, offset, length, frame, ts):
+    def gap(self, flow, side, offset, length, frame, ts, reason):
         self._check(flow)
         assert length > 0
         self.events.append(("gap", flow, side, offset, length, frame))
@@ -663,6 +663,7 @@ def test_counters_after_a_mixed_capture():
         "retransmitted_bytes": 3,
         "gaps": 1,
         "gap_bytes": 2,
+        "flow_end_gaps": 1,
         "held_bytes_peak": 2,
         "held_memory_peak": 2 + HELD_CHUNK_COST,
     }

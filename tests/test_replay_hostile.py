@@ -8,11 +8,7 @@ counts only in the receive window, text and FIN before RCV.NXT are old) and
 RFC 5961 §3.2; scapy computes the checksums (RFC 9293 §3.1) unless told a
 wrong one. The data is an invented smart-building lab in the documentation
 address ranges.
-
-The tests marked ``NEEDS_SUM_OK`` need a decoder that fills
-``Packet.sum_ok`` (branch "trunc"); on a branch without it they fail, and
-are marked as expected to (strictly): once merged they pass, and the marker
-must go.
+The decoder fills ``Packet.sum_ok`` for FIN and RST segments captured whole.
 """
 
 from __future__ import annotations
@@ -20,9 +16,6 @@ from __future__ import annotations
 import pytest
 
 from test_replay import Clock, Conversation, compiled, of_type, replay, write
-
-NEEDS_SUM_OK = pytest.mark.xfail(
-    strict=True, reason="needs the decoder to set Packet.sum_ok (branch trunc): remove after merge")
 
 # a thermostat override the client sends; `side` and `ports` limits must keep firing
 SIGS = ({"id": "override", "text": "mode=override", "side": "client", "ports": [8080]},)
@@ -107,7 +100,6 @@ def test_fin_with_a_stale_sequence_number_is_ignored(tmp_path):
     assert result.counters["ignored_fin"] == 1 and result.counters["beyond_fin_bytes"] == 0
 
 
-@NEEDS_SUM_OK
 @pytest.mark.parametrize("flags", ["R", "RA", "FA"])
 def test_control_segment_with_a_wrong_checksum_is_ignored(tmp_path, flags):
     c = Conversation(CLIENT_EP, SERVER_EP, clock=Clock())
@@ -124,7 +116,6 @@ def test_control_segment_with_a_wrong_checksum_is_ignored(tmp_path, flags):
     assert result.counters[kind] == 1 and result.counters["beyond_fin_bytes"] == 0
 
 
-@NEEDS_SUM_OK
 def test_fin_with_a_wrong_checksum_and_data_keeps_the_data(tmp_path):
     c = Conversation(CLIENT_EP, SERVER_EP, clock=Clock())
     c.handshake()

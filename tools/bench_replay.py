@@ -271,7 +271,7 @@ class NullSink:
     def data(self, flow, side, offset, payload, frame, ts, datagram):
         pass
 
-    def gap(self, flow, side, offset, length, frame, ts):
+    def gap(self, flow, side, offset, length, frame, ts, reason):
         pass
 
     def overlap(self, flow, side, offset, length, frame, ts):

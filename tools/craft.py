@@ -431,24 +431,33 @@ def _split_time(t, units_per_second: int) -> tuple[int, int]:
 
 
 def write_pcap(path, packets: Iterable[Packet], *, linktype: int | None = None,
-               nano: bool = False, big_endian: bool = False) -> None:
+               nano: bool = False, big_endian: bool = False,
+               snaplen: int | None = None) -> None:
     """Write a classic pcap file (draft-ietf-opsawg-pcap) with scapy's writer.
 
     ``linktype`` defaults to the first packet's (Ethernet 1, bare IP 101;
     Ethernet for an empty list).  ``nano`` selects nanosecond timestamps
     (magic 0xa1b23c4d instead of 0xa1b2c3d4); ``big_endian`` writes every
     header field big-endian.  Timestamps are taken exactly from ``pkt.time``.
+    ``snaplen``: capture at most that many bytes of each frame, as a capture
+    with that snapshot length does (the record's captured length is the
+    cut one, its original length the frame's; the header says ``snaplen``).
     """
     packets = list(packets)
     if linktype is None:
         linktype = _linktype(packets[0]) if packets else LINKTYPE_ETHERNET
     units = 1_000_000_000 if nano else 1_000_000
     with PcapWriter(str(path), linktype=linktype, endianness=">" if big_endian else "<",
-                    nano=nano) as writer:
+                    nano=nano, snaplen=snaplen or 65535) as writer:
         writer.write_header(None)
         for pkt in packets:
             sec, frac = _split_time(pkt.time, units)
-            writer.write_packet(pkt, sec=sec, usec=frac)
+            if snaplen is None:
+                writer.write_packet(pkt, sec=sec, usec=frac)
+            else:
+                data = bytes(pkt)
+                writer.write_packet(data[:snaplen], sec=sec, usec=frac,
+                                    caplen=min(len(data), snaplen), wirelen=len(data))
 
 
 def _pcapng_option(code: int, value: bytes) -> bytes:

@@ -6,7 +6,9 @@
  * records written; this file mirrors seamscan.capture's classic pcap reader
  * (for complete records only) and the first branch of
  * seamscan.decode.Decoder.decode (untagged Ethernet, IPv4 without options and
- * not a fragment or IPv6 without extension headers, TCP or UDP).
+ * not a fragment or IPv6 without extension headers, TCP or UDP, wholly
+ * captured: a frame cut by the snap length, or an IPv4 total length of 0,
+ * fails sf__decode's length checks and is left to the Python decoder).
  */
 #include <stdint.h>
 #include <stddef.h>
@@ -130,7 +132,12 @@ size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint
             break;
         sf_pkt k;
         memset(r, 0, SF_REC_SIZE);
-        if (ethernet && sf__decode(h + 16, caplen, &k)) {
+        /* A TCP segment with FIN or RST goes to the Python decoder, which
+         * verifies its checksum (Packet.sum_ok); they are about two per flow.
+         * So does a record whose fraction of a second is out of range (the
+         * decoder counts it). */
+        if (ethernet && frac < units && sf__decode(h + 16, caplen, &k) &&
+            !(k.proto == 6 && (k.flags & 5u))) {
             put_decoded(r, &k, (uint32_t)(pos + 16));
             nfast++;
         } else {
@@ -144,7 +151,8 @@ size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint
          * division when the numerator is below 2**53: both operands are then
          * exact in an IEEE 754 binary64, whose division rounds once. */
         whole = (uint64_t)sec * units + frac;
-        if (whole < ((uint64_t)1 << 53)) {
+        /* Inexact, or a fraction of a second out of range (counted by Python). */
+        if (whole < ((uint64_t)1 << 53) && frac < units) {
             double ts = (double)whole / (double)units;
             put32(r, 36, 1);
             memcpy(r + 40, &ts, 8);

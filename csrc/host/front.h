@@ -35,8 +35,9 @@ uint32_t sf__rd32(const uint8_t *p, int big);
 /* ---- the fast lane (lane.c) ------------------------------------------ */
 
 #define SF_KEY_SIZE 40u   /* proto, address length, sport, dport (big-endian), 0, 0, src, dst */
-#define SF_META_SIZE 24u  /* per batch item: u64 frame, f64 ts, u32 slot, u32 0 */
-#define SF_TOUCH_SIZE 24u /* per touched flow: u32 flow slot, u32 0, u64 frame, f64 ts */
+/* ts_ns: the capture time in integer nanoseconds, exact where ts is rounded */
+#define SF_META_SIZE 32u  /* per batch item: u64 frame, f64 ts, u32 slot, u32 0, i64 ts_ns */
+#define SF_TOUCH_SIZE 32u /* per touched flow: u32 flow slot, u32 0, u64 frame, f64 ts, i64 ts_ns */
 #define SF_RUN_MAX 4096u  /* records handled per sf_lane_run call, at most */
 
 #define SF_RUN_STOP 0  /* the record at pos is not the lane's: Python takes it */
@@ -91,6 +92,7 @@ int sf_lane_run(sf_lane *lane, sf_run *run);
 /* The flows the lane touched since the last call (each once, in no order):
  * SF_TOUCH_SIZE records to out (room for max_flows); returns how many. */
 size_t sf_lane_touched(sf_lane *lane, uint8_t *out);
-/* Forget flow slot fs's touch, if any: 1 and its last frame and time. */
-int sf_lane_untouch(sf_lane *lane, uint32_t fs, uint64_t *frame, double *ts);
+/* Forget flow slot fs's touch, if any: 1 and its last frame and time (seconds
+ * and integer nanoseconds). */
+int sf_lane_untouch(sf_lane *lane, uint32_t fs, uint64_t *frame, double *ts, int64_t *ns);
 #endif

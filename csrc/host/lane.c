@@ -35,6 +35,7 @@ struct sf_lane {
      * slot the frame and time of its last packet here, and where it is in
      * the list `pend` (npend entries), or UINT32_MAX. */
     double *last_ts;
+    int64_t *last_ns;
     uint64_t *last_frame;
     uint32_t *pend_at, *pend, npend, max_flows;
 };
@@ -66,10 +67,12 @@ sf_lane *sf_lane_new(uint32_t max_flows, uint32_t keep)
     L->sides = calloc(L->max_sides, sizeof *L->sides);
     L->max_flows = max_flows;
     L->last_ts = calloc(max_flows, sizeof *L->last_ts);
+    L->last_ns = calloc(max_flows, sizeof *L->last_ns);
     L->last_frame = calloc(max_flows, sizeof *L->last_frame);
     L->pend_at = malloc(max_flows * sizeof *L->pend_at);
     L->pend = malloc(max_flows * sizeof *L->pend);
-    if (L->index && L->sides && L->last_ts && L->last_frame && L->pend_at && L->pend) {
+    if (L->index && L->sides && L->last_ts && L->last_ns && L->last_frame && L->pend_at &&
+        L->pend) {
         memset(L->pend_at, 0xFF, max_flows * sizeof *L->pend_at);
         return L;
     }
@@ -89,6 +92,7 @@ void sf_lane_free(sf_lane *L)
     free(L->index);
     free(L->sides);
     free(L->last_ts);
+    free(L->last_ns);
     free(L->last_frame);
     free(L->pend_at);
     free(L->pend);
@@ -211,7 +215,7 @@ static int old_copy(const side *S, uint32_t seq, const uint8_t *p, uint32_t n)
     return memcmp(p + skip, S->tail + (off + skip - tail_start), n - skip) == 0;
 }
 
-static void touch(sf_lane *L, uint32_t fs, uint64_t frame, double ts)
+static void touch(sf_lane *L, uint32_t fs, uint64_t frame, double ts, int64_t ns)
 {
     if (L->pend_at[fs] == UINT32_MAX) {
         L->pend_at[fs] = L->npend;
@@ -219,6 +223,7 @@ static void touch(sf_lane *L, uint32_t fs, uint64_t frame, double ts)
     }
     L->last_frame[fs] = frame;
     L->last_ts[fs] = ts;
+    L->last_ns[fs] = ns;
 }
 
 size_t sf_lane_touched(sf_lane *L, uint8_t *out)
@@ -231,19 +236,21 @@ size_t sf_lane_touched(sf_lane *L, uint8_t *out)
         memcpy(o + 4, &zero, 4);
         memcpy(o + 8, &L->last_frame[fs], 8);
         memcpy(o + 16, &L->last_ts[fs], 8);
+        memcpy(o + 24, &L->last_ns[fs], 8);
         L->pend_at[fs] = UINT32_MAX;
     }
     L->npend = 0;
     return n;
 }
 
-int sf_lane_untouch(sf_lane *L, uint32_t fs, uint64_t *frame, double *ts)
+int sf_lane_untouch(sf_lane *L, uint32_t fs, uint64_t *frame, double *ts, int64_t *ns)
 {
     uint32_t at, last;
     if (fs >= L->max_flows || (at = L->pend_at[fs]) == UINT32_MAX)
         return 0;
     *frame = L->last_frame[fs];
     *ts = L->last_ts[fs];
+    *ns = L->last_ns[fs];
     last = L->pend[--L->npend];
     L->pend[at] = last;
     L->pend_at[last] = at;
@@ -264,6 +271,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
         uint32_t sec, frac, caplen, n;
         uint64_t whole;
         double ts;
+        int64_t ns;
         sf_pkt k;
         int64_t sid;
         side *S;
@@ -281,9 +289,12 @@ int sf_lane_run(sf_lane *L, sf_run *r)
         if (caplen > r->limit || caplen > r->len - pos - 16)
             break;
         whole = (uint64_t)sec * r->units + frac;
-        if (whole >= ((uint64_t)1 << 53) || !r->ethernet || !sf__decode(f, caplen, &k))
+        if (whole >= ((uint64_t)1 << 53) || frac >= r->units || !r->ethernet ||
+            !sf__decode(f, caplen, &k))
             break;
         ts = (double)whole / (double)r->units; /* as sf_pcap_records */
+        /* exact nanoseconds (classic pcap: units 10**6 or 10**9; whole < 2**53) */
+        ns = (int64_t)(whole * (1000000000u / r->units));
         if (ts >= r->sweep_at)
             break; /* the tracker's idle sweep is due */
         memset(key, 0, sizeof key);
@@ -305,7 +316,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             if (!old_copy(S, k.seq, f + k.ps, n))
                 break; /* ahead, partly new, or disagreeing: the tracker's general path */
             r->frame++;
-            touch(L, (uint32_t)(sid >> 1), r->frame, ts);
+            touch(L, (uint32_t)(sid >> 1), r->frame, ts, ns);
             S->st.packets++;
             r->retransmitted += n;
             r->fast++;
@@ -317,7 +328,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             break;
         }
         r->frame++;
-        touch(L, (uint32_t)(sid >> 1), r->frame, ts);
+        touch(L, (uint32_t)(sid >> 1), r->frame, ts, ns);
         S->st.packets++;
         if (n) {
             ss_item it;
@@ -338,6 +349,7 @@ int sf_lane_run(sf_lane *L, sf_run *r)
             memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 8, &ts, 8);
             memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 16, &slot, 4);
             memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 20, &zero, 4);
+            memcpy(r->meta + (size_t)r->nitems * SF_META_SIZE + 24, &ns, 8);
             memcpy(r->data + r->ndata, f + k.ps, n);
             r->nitems++;
             r->ndata += n;

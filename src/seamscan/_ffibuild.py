@@ -82,7 +82,7 @@ int sf_lane_lend(sf_lane *lane, uint32_t sid, const uint8_t *key, const sf_side_
 void sf_lane_reclaim(sf_lane *lane, uint32_t sid, sf_side_state *st, uint8_t *tail);
 int sf_lane_run(sf_lane *lane, sf_run *run);
 size_t sf_lane_touched(sf_lane *lane, uint8_t *out);
-int sf_lane_untouch(sf_lane *lane, uint32_t fs, uint64_t *frame, double *ts);
+int sf_lane_untouch(sf_lane *lane, uint32_t fs, uint64_t *frame, double *ts, int64_t *ns);
 """
 
 def _host_flags() -> list[str]:

@@ -4,8 +4,16 @@
 ``(frame_no, ts, linktype, frame)`` tuple per captured frame:
 
 - ``frame_no``: 1-based count of frames in the file;
-- ``ts``: capture time in seconds (float), the exact rational value of the
-  record's timestamp rounded once to the nearest float;
+- ``ts``: capture time in seconds, a :class:`Stamp`: a float, the exact
+  rational value of the record's timestamp rounded once to the nearest
+  float, whose ``ns`` attribute is the exact time in integer nanoseconds
+  since the epoch (rounded down when the capture's resolution is finer
+  than a nanosecond). A float near today's epoch seconds holds about 7
+  decimal places, not 9: ``ns`` is what keeps a nanosecond capture's
+  times exact. A classic pcap record whose fraction field is out of range
+  (at least 10**6 microseconds or 10**9 nanoseconds) keeps the value
+  sec + frac / units, as an :class:`InvalidStamp` (a ``Stamp``), which the
+  decoder counts;
 - ``linktype``: the LINKTYPE_ value of the frame's link layer;
 - ``frame``: the captured bytes (at most the snapshot length; not copied
   beyond the one slice).
@@ -75,6 +83,37 @@ _BOM_BE = b"\x1a\x2b\x3c\x4d"
 # pcapng block types and options used here
 _BT_IDB, _BT_PB, _BT_SPB, _BT_EPB, _BT_SHB = 1, 2, 3, 6, 0x0A0D0D0A
 _OPT_END, _OPT_TSRESOL, _OPT_TSOFFSET = 0, 9, 14
+
+
+class Stamp(float):
+    """A capture time: seconds as a float, and ``ns``, the exact integer
+    nanoseconds since the epoch."""
+
+    __slots__ = ("ns",)
+
+
+class InvalidStamp(Stamp):
+    """The time of a record whose fraction-of-a-second field was out of range."""
+
+    __slots__ = ()
+
+
+def stamp(sec: int, frac: int, units: int) -> Stamp:
+    """The :class:`Stamp` of ``sec`` seconds and ``frac`` units of
+    1/``units`` second: ``(sec * units + frac) / units`` rounded once, and
+    its nanoseconds rounded down; an :class:`InvalidStamp` when ``frac`` is
+    not below ``units``."""
+    whole = sec * units + frac
+    t = (Stamp if frac < units else InvalidStamp)(whole / units)
+    t.ns = whole * 1_000_000_000 // units
+    return t
+
+
+def stamp_of(seconds: float, ns: int) -> Stamp:
+    """A :class:`Stamp` from its two values (as C hands them back)."""
+    t = Stamp(seconds)
+    t.ns = ns
+    return t
 
 
 class CaptureError(Exception):
@@ -230,6 +269,7 @@ class CaptureReader:
         """Records of a classic pcap file; ``buf`` holds its 24-byte header
         and possibly more."""
         linktype, units, limit, unpack = pcap_header(buf)
+        scale = 1_000_000_000 // units  # classic pcap: units is 10**6 or 10**9
         base = 0  # stream offset of buf[0]
         pos = 24
         frame = 0
@@ -239,7 +279,12 @@ class CaptureReader:
                 return
             buf, pos, base, sec, frac, data = step
             frame += 1
-            yield frame, (sec * units + frac) / units, linktype, data
+            if frac < units:  # stamp(sec, frac, units), inline: the reader's hot path
+                ts = Stamp((sec * units + frac) / units)
+                ts.ns = sec * 1_000_000_000 + frac * scale
+            else:
+                ts = stamp(sec, frac, units)
+            yield frame, ts, linktype, data
 
     def _pcap_record(self, buf, pos, base, frame, unpack, limit):
         """One record at ``buf[pos:]`` (refilling the buffer as needed):
@@ -277,7 +322,7 @@ class CaptureReader:
         base = 0  # stream offset of buf[0]
         pos = 0
         frame = 0
-        last_ts = 0.0
+        last_ts = stamp(0, 0, 1)
         endian = "<"
         interfaces: list[tuple[int, int, int, int]] = []  # linktype, units/s, offset, snaplen
         head = struct.Struct("<II")
@@ -338,7 +383,7 @@ class CaptureReader:
                                       f"holds at most {blen - 32}", where, frame)
                 linktype, units, offset, _ = interfaces[ifid]
                 frame += 1
-                last_ts = (((tsh << 32) | tsl) + offset) / units
+                last_ts = stamp(*divmod(((tsh << 32) | tsl) + offset, units), units)
                 yield frame, last_ts, linktype, buf[pos + 28:pos + 28 + caplen]
             elif btype == _BT_SPB:
                 if not interfaces:

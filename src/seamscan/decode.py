@@ -23,31 +23,61 @@ next header (59) and every other protocol end the chain as "other IP". A
 Fragment header with offset 0 and M = 0 (an atomic fragment, RFC 6946) is
 skipped over. Fragments go to the ``ipfrag.Defragmenter``; the reassembled
 datagram is decoded as if it arrived in the frame that completed it.
-Checksums are not verified (captures taken on the sending host carry
-unfinished checksums when the network card computes them) (common
-practice). The L4 payload ends where the IP header's length says, never at
+
+Checksums: the TCP checksum of a segment carrying FIN or RST that was
+captured whole is verified (``Packet.sum_ok``; RFC 9293 section 3.1 with
+its pseudo-header), so that the flow tracker can tell a forged control
+segment; other checksums are not verified, and a wrong one never drops a
+packet here (captures taken on the sending host carry unfinished checksums
+when the network card computes them) (common practice).
+
+Lengths: the L4 payload ends where the IP header's length says, never at
 the end of the frame (short Ethernet frames carry padding, and some links
 append a frame check sequence); a UDP payload ends where the UDP length
-says, which may be before the IP payload's end, never after. IPv6 jumbograms
-(payload length 0) are counted as malformed.
+says, which may be before the IP payload's end, never after. IPv6
+jumbograms (payload length 0) are counted as malformed.
 
-Counters (``Decoder.counters``, all present from the start):
+Truncated frames (a capture's snap length cuts the frame before the end the
+IP header gives): every captured byte is still decoded. The payload ends at
+the earlier of the IP (or UDP) header's end and the end of the captured
+bytes; ``Packet.cut`` says how many promised payload bytes were not
+captured (0 for a whole packet), and the flow tracker reports them as a
+gap. A frame cut before the transport header's fields that matter (TCP: the
+first 14 bytes, up to the flags; UDP: 8 bytes), or inside the IPv4 header's
+options or an IPv6 extension header, counts as ``headers_cut``. A fragment
+cut short cannot be reassembled: it is counted (``fragments`` and
+``truncated_fragments``) and dropped. An IPv4 TCP segment with total length
+0 (what a host-side capture shows for a segment the network card
+segments, TSO) runs to the end of the captured frame (counted in
+``ipv4_total_zero``).
 
-- ``frames``: frames given to ``decode``;
-- ``decoded``: TCP or UDP packets returned;
+Counters (``Decoder.counters``, all present from the start). The fates,
+``FATES``: every frame given to ``decode`` counts in exactly one of them, so
+they add up to ``frames``:
+
+- ``decoded``: TCP or UDP packets returned (a datagram reassembled from
+  fragments counts once, for the frame that completed it);
 - ``not_ip``: link layer fine but carrying neither IPv4 nor IPv6 (ARP, ...);
 - ``other_ip``: IP, but not TCP or UDP after reassembly (ICMP, ESP, ...);
-- ``malformed``: a header truncated or inconsistent anywhere: IPv4 IHL < 5,
-  total length below the header or beyond the frame, IPv6 payload length
-  beyond the frame, an extension chain running past the payload, TCP data
-  offset < 5 or beyond the datagram, UDP length < 8 or beyond the datagram,
-  an IP version that the link type contradicts;
+- ``malformed``: a header inconsistent or cut short anywhere before the IP
+  header's length can be read, or contradicting it: IPv4 IHL < 5, total
+  length below the header, an extension chain running past the payload,
+  TCP data offset < 5 or beyond the datagram, UDP length < 8 or beyond the
+  datagram, an IP version that the link type contradicts;
 - ``unknown_link``: a link type not listed above;
-- ``fragments``: frames that carried an IP fragment (held, dropped or
-  completing a datagram; a completing frame also counts as decoded,
-  other_ip or malformed according to the reassembled datagram);
-- ``frag_*``: the defragmenter's counters (see ``ipfrag``): ``reassembled``,
-  ``overlaps``, ``timeouts``, ``evicted``, ``too_big``, ``too_many``, ``bad``.
+- ``headers_cut``: the capture ends inside the IP options, an IPv6
+  extension header or the TCP/UDP header fields needed (see above);
+- ``fragments``: frames carrying an IP fragment that did not complete a
+  datagram (held for later, or dropped).
+
+Other counters (not fates): ``frames`` (frames given to ``decode``);
+``truncated_packets`` (decoded packets whose payload was cut short by the
+snap length; they count as ``decoded``); ``truncated_fragments`` (fragments
+dropped because they were cut short; they count as ``fragments``);
+``ipv4_total_zero`` (IPv4 TCP segments whose total length 0 was read as
+"to the end of the frame"); ``invalid_timestamps`` (frames whose time is a
+``capture.InvalidStamp``: a fraction of a second out of range); and ``frag_*``, the defragmenter's counters (see ``ipfrag``): ``reassembled``,
+``overlaps``, ``timeouts``, ``evicted``, ``too_big``, ``too_many``, ``bad``.
 """
 
 from __future__ import annotations
@@ -57,10 +87,16 @@ import socket
 import struct
 from collections import namedtuple
 
+from seamscan.capture import InvalidStamp
 from seamscan.ipfrag import Defragmenter
 
 COUNTERS = ("frames", "decoded", "not_ip", "other_ip", "malformed", "unknown_link",
-            "fragments")
+            "headers_cut", "fragments", "truncated_packets", "truncated_fragments",
+            "ipv4_total_zero", "invalid_timestamps")
+
+# The fates of a frame: each frame read counts in exactly one of them.
+FATES = ("decoded", "not_ip", "other_ip", "malformed", "unknown_link", "headers_cut",
+         "fragments")
 
 
 class Packet(namedtuple("Packet", "proto src dst sport dport seq ack flags payload frame ts cut sum_ok", defaults=(0, None))):
@@ -70,10 +106,32 @@ class Packet(namedtuple("Packet", "proto src dst sport dport seq ack flags paylo
     ``sport``/``dport``; ``seq``/``ack``/``flags`` (TCP sequence, ack and
     flags byte; 0 for UDP); ``payload`` the L4 payload bytes; ``frame`` the
     frame number and ``ts`` the capture time of the frame it came in (for a
-    reassembled datagram, the frame that completed it).
+    reassembled datagram, the frame that completed it); ``cut`` the
+    payload bytes the IP (and UDP) header promise beyond the bytes captured
+    (0 when the whole packet was captured: ``payload`` is then all of it);
+    ``sum_ok`` whether the TCP checksum is right (RFC 9293 section 3.1, the
+    pseudo-header included), for a segment with FIN or RST wholly captured,
+    else None (not checked).
     """
 
     __slots__ = ()
+
+
+def tcp_checksum_ok(src: bytes, dst: bytes, segment: bytes) -> bool:
+    """Whether the TCP ``segment`` (header and payload, as captured) between
+    the 4- or 16-byte addresses ``src`` and ``dst`` carries a right checksum:
+    the one's complement sum of the pseudo-header (RFC 9293 section 3.1 for
+    IPv4, RFC 8200 section 8.1 for IPv6) and the segment is all ones.  The
+    one's complement sum of 16-bit words is their value modulo 0xFFFF (as
+    2**16 = 1 mod 0xFFFF), so the check is one big-integer remainder."""
+    n = len(segment)
+    if len(src) == 4:
+        pseudo = src + dst + b"\0\x06" + n.to_bytes(2, "big")
+    else:
+        pseudo = src + dst + n.to_bytes(4, "big") + b"\0\0\0\x06"
+    if n & 1:
+        segment += b"\0"
+    return int.from_bytes(pseudo + segment, "big") % 0xFFFF == 0
 
 
 def format_ip(addr: bytes) -> str:
@@ -129,6 +187,8 @@ class Decoder:
         """Decode one frame; ``None`` (counted) unless it is TCP or UDP."""
         c = self._counts
         c["frames"] += 1
+        if ts.__class__ is InvalidStamp:
+            c["invalid_timestamps"] += 1
         if linktype == 1:  # the common case in one struct call; anything unusual falls through
             n = len(buf)
             if n >= 48:
@@ -141,7 +201,9 @@ class Decoder:
                             if doff >= 20 and 20 + doff <= total:
                                 c["decoded"] += 1
                                 return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
-                                                     buf[34 + doff:14 + total], frame_no, ts, 0, None))
+                                                     buf[34 + doff:14 + total], frame_no, ts, 0,
+                                                     tcp_checksum_ok(src, dst, buf[34:14 + total])
+                                                     if flags & 5 else None))
                         elif proto == 17:
                             ulen = seq >> 16
                             if 8 <= ulen <= total - 20:
@@ -157,7 +219,9 @@ class Decoder:
                             if doff >= 20 and doff <= plen:
                                 c["decoded"] += 1
                                 return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
-                                                     buf[54 + doff:54 + plen], frame_no, ts, 0, None))
+                                                     buf[54 + doff:54 + plen], frame_no, ts, 0,
+                                                     tcp_checksum_ok(src, dst, buf[54:54 + plen])
+                                                     if flags & 5 else None))
                         elif proto == 17:
                             ulen = seq >> 16
                             if 8 <= ulen <= plen:
@@ -205,34 +269,55 @@ class Decoder:
                 return None
 
             # -- IP --------------------------------------------------------
+            # end: where the IP header says the datagram ends; got: where the
+            # captured bytes end (the snap length may cut the frame short).
+            n = len(buf)
             if et == 0x0800:
                 vihl, total, ident, fragw, proto, src, dst = _V4(buf, off)
                 ihl = (vihl & 15) << 2
-                if vihl >> 4 != 4 or ihl < 20 or total < ihl or off + total > len(buf):
+                if total == 0 and proto == 6 and not fragw & 0x3FFF and vihl >> 4 == 4:
+                    # A segment handed to the network card for segmentation
+                    # (TSO), captured on the sending host: its total length
+                    # is 0 and it runs to the end of the captured frame.
+                    total = n - off
+                    c["ipv4_total_zero"] += 1
+                if vihl >> 4 != 4 or ihl < 20 or total < ihl:
                     c["malformed"] += 1
                     return None
                 l4 = off + ihl
                 end = off + total
+                got = min(end, n)
+                if got < l4:
+                    c["headers_cut"] += 1
+                    return None
                 if fragw & 0x3FFF:
-                    c["fragments"] += 1
+                    if got < end:  # a fragment cut short cannot be reassembled
+                        c["fragments"] += 1
+                        c["truncated_fragments"] += 1
+                        return None
                     buf = self.defrag.add_v4(src, dst, proto, ident, (fragw & 0x1FFF) << 3,
                                              fragw & 0x2000 != 0, buf[l4:end], ts)
                     if buf is None:
+                        c["fragments"] += 1
                         return None
                     l4 = 0
-                    end = len(buf)
+                    end = got = len(buf)
             elif et == 0x86DD:
                 vtc, plen, proto, src, dst = _V6(buf, off)
                 end = off + 40 + plen
-                if vtc >> 4 != 6 or end > len(buf):
+                if vtc >> 4 != 6:
                     c["malformed"] += 1
                     return None
+                got = min(end, n)
                 l4 = off + 40
                 reassembled = False
                 while proto != 6 and proto != 17:
                     if proto in _V6_SKIP or proto == 51:
                         if l4 + 8 > end:
                             c["malformed"] += 1
+                            return None
+                        if l4 + 2 > got:
+                            c["headers_cut"] += 1
                             return None
                         if proto == 51:
                             size = (buf[l4 + 1] + 2) << 2
@@ -247,19 +332,26 @@ class Decoder:
                         if l4 + 8 > end or reassembled:
                             c["malformed"] += 1
                             return None
+                        if l4 + 8 > got:
+                            c["headers_cut"] += 1
+                            return None
                         offw, ident = _V6_FRAG(buf, l4 + 2)
                         if offw & 0xFFF9 == 0:  # atomic fragment: offset 0, M = 0
                             proto = buf[l4]
                             l4 += 8
                             continue
-                        c["fragments"] += 1
-                        got = self.defrag.add_v6(src, dst, ident, buf[l4], offw & 0xFFF8,
-                                                 offw & 1 == 1, buf[l4 + 8:end], ts)
-                        if got is None:
+                        if got < end:  # a fragment cut short cannot be reassembled
+                            c["fragments"] += 1
+                            c["truncated_fragments"] += 1
                             return None
-                        proto, buf = got
+                        back = self.defrag.add_v6(src, dst, ident, buf[l4], offw & 0xFFF8,
+                                                  offw & 1 == 1, buf[l4 + 8:end], ts)
+                        if back is None:
+                            c["fragments"] += 1
+                            return None
+                        proto, buf = back
                         l4 = 0
-                        end = len(buf)
+                        end = got = len(buf)
                         reassembled = True
                     else:
                         c["other_ip"] += 1
@@ -273,25 +365,44 @@ class Decoder:
                 if end - l4 < 20:
                     c["malformed"] += 1
                     return None
+                if got - l4 < 14:  # ports, sequence number, data offset and flags
+                    c["headers_cut"] += 1
+                    return None
                 sport, dport, seq, ack, doff, flags = _TCP(buf, l4)
                 doff = (doff >> 4) << 2
                 if doff < 20 or l4 + doff > end:
                     c["malformed"] += 1
                     return None
+                start = l4 + doff
+                cut = end - max(start, got)
                 c["decoded"] += 1
+                if cut or got < end:  # the checksum needs the whole segment
+                    if cut:
+                        c["truncated_packets"] += 1
+                    return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
+                                         buf[start:min(got, end)], frame_no, ts, cut, None))
                 return _new(Packet, (6, src, dst, sport, dport, seq, ack, flags,
-                                     buf[l4 + doff:end], frame_no, ts, 0, None))
+                                     buf[start:end], frame_no, ts, 0,
+                                     tcp_checksum_ok(src, dst, buf[l4:end])
+                                     if flags & 5 else None))
             if proto == 17:
                 if end - l4 < 8:
                     c["malformed"] += 1
+                    return None
+                if got - l4 < 8:
+                    c["headers_cut"] += 1
                     return None
                 sport, dport, ulen = _UDP(buf, l4)
                 if ulen < 8 or ulen > end - l4:
                     c["malformed"] += 1
                     return None
+                stop = l4 + ulen
+                cut = stop - min(stop, got)
                 c["decoded"] += 1
+                if cut:
+                    c["truncated_packets"] += 1
                 return _new(Packet, (17, src, dst, sport, dport, 0, 0, 0,
-                                     buf[l4 + 8:l4 + ulen], frame_no, ts, 0, None))
+                                     buf[l4 + 8:stop - cut], frame_no, ts, cut, None))
             c["other_ip"] += 1
             return None
         except (IndexError, struct.error):

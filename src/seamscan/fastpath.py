@@ -36,8 +36,11 @@ TCP flags, address length, source port, destination port, seq, ack, offset
 of the source address (the destination follows it), payload start and end
 (for kind 1: the frame's start and end), the header's seconds and fraction,
 whether ``ts`` is exact, ``ts``.  ``ts`` equals the reader's
-``(sec * units + frac) / units`` whenever the numerator is below 2**53;
-otherwise Python computes it (the lane stops at such a record).
+``(sec * units + frac) / units`` whenever the numerator is below 2**53 and
+the fraction below ``units``; otherwise Python computes it (the lane stops
+at such a record).  Kind 0 is never a frame cut by the snap length (its
+``Packet.cut`` is 0) nor a TCP segment with FIN or RST (whose checksum the
+decoder verifies), so its ``Packet.sum_ok`` is None.
 
 Progress is reported every 4096 records or so, not every 4096 exactly.
 """
@@ -48,7 +51,7 @@ import struct
 from operator import itemgetter
 
 from seamscan._seamcore import ffi, lib
-from seamscan.capture import _PCAP_MAGICS, CaptureReader, pcap_header
+from seamscan.capture import _PCAP_MAGICS, CaptureReader, Stamp, pcap_header, stamp, stamp_of
 from seamscan.decode import Packet
 
 _REC = struct.Struct("=BBBBHHIIIIIIII d")
@@ -91,6 +94,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane, base_frame=0) -> None:
     reader's messages name them); packets, the lane and the sink see
     ``base_frame + frame``."""
     linktype, units, limit, unpack = pcap_header(buf)
+    scale = 1_000_000_000 // units  # classic pcap: units is 10**6 or 10**9
     big = int(_PCAP_MAGICS[buf[:4]][0] == ">")
     ethernet = int(linktype == 1)
     decode = decoder.decode
@@ -109,8 +113,11 @@ def _pcap(reader, buf, decoder, packet, progress, lane, base_frame=0) -> None:
         for (kind, proto, flags, alen, sport, dport, seq, ack, so, ps, pe, sec, frac, exact,
              ts) in recs:
             frame += 1
-            if not exact:
-                ts = (sec * units + frac) / units
+            if exact:  # the reader's Stamp (C's ts is its float; frac < units)
+                ts = Stamp(ts)
+                ts.ns = sec * 1_000_000_000 + frac * scale
+            else:
+                ts = stamp(sec, frac, units)
             if lane is not None:
                 lane.cur = base_frame + frame
             if kind:  # a frame C does not decode: lending its flow would not help
@@ -179,7 +186,7 @@ def _pcap(reader, buf, decoder, packet, progress, lane, base_frame=0) -> None:
         frame += 1
         if lane is not None:
             lane.cur = base_frame + frame
-        pkt = decode(base_frame + frame, (sec * units + frac) / units, linktype, data)
+        pkt = decode(base_frame + frame, stamp(sec, frac, units), linktype, data)
         if pkt is not None:
             side = packet(pkt)
             if relend is not None and side is not None:
@@ -199,7 +206,9 @@ def live_lanes() -> int:
     """How many fast lanes hold C memory now (a replay frees its lane when it
     ends: tests check that this returns to 0 without the cyclic collector)."""
     return _live[0]
-_TOUCH = struct.Struct("=I4xQd")  # SF_TOUCH_SIZE: flow slot, frame, ts
+
+
+_TOUCH = struct.Struct("=I4xQdq")  # SF_TOUCH_SIZE: flow slot, frame, ts, ts_ns
 # sf_side_state: next, sink_next, packets, bytes, expect, tail_len, proto,
 # side_code, transport, pad, port, pad2, cflags (and padding to 8 bytes)
 _STATE = struct.Struct("=QQQQIIBBBBHHI4x")
@@ -254,6 +263,7 @@ class Lane:
         self._touched = ffi.buffer(self.touched)
         self._frame = ffi.new("uint64_t *")
         self._ts = ffi.new("double *")
+        self._ns = ffi.new("int64_t *")
         self._r = bytearray(ffi.sizeof("sf_run"))
         self.r = ffi.from_buffer("sf_run *", self._r)
         self.rec = ffi.new("uint8_t[]", _REC.size)
@@ -405,9 +415,9 @@ class Lane:
             flow.lent = False
         if side is None:
             mine = self.pending.pop(flow, -1)
-            if lib.sf_lane_untouch(self.c, flow.slot, self._frame, self._ts) and \
+            if lib.sf_lane_untouch(self.c, flow.slot, self._frame, self._ts, self._ns) and \
                     self._frame[0] > mine:
-                flow.last_ts = self._ts[0]
+                flow.last_ts = stamp_of(self._ts[0], self._ns[0])
             if self.owner[flow.slot] is flow:
                 self.owner[flow.slot] = None
 
@@ -424,11 +434,11 @@ class Lane:
         n = lib.sf_lane_touched(self.c, self.touched)
         if n:
             owner = self.owner
-            for fslot, frame, ts in _TOUCH.iter_unpack(self._touched[:n * _TOUCH.size]):
+            for fslot, frame, ts, ns in _TOUCH.iter_unpack(self._touched[:n * _TOUCH.size]):
                 flow = owner[fslot]
                 if frame > pending.get(flow, -1):
                     pending[flow] = frame
-                    flow.last_ts = ts
+                    flow.last_ts = stamp_of(ts, ns)
         if pending:
             tcp, udp = self.tracker._tcp_lru, self.tracker._udp_lru
             for flow, _frame in sorted(pending.items(), key=_second):

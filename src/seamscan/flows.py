@@ -6,10 +6,12 @@ stream order, with stream offsets, and says where the holes are.
 
 A packet is a tuple of the fields proto (6 TCP, 17 UDP), src, dst (4 or 16
 bytes), sport, dport, seq, ack, flags (TCP flags byte), payload, frame
-(1-based record number), ts (capture seconds), cut and sum_ok, in this order
-and also readable by name: `seamscan.decode.Packet`, or any namedtuple of
-these fields (the hot path unpacks it, the rest reads names); ack is read
-only for a RST of a side with nothing seen.
+(1-based record number), ts (capture seconds), cut (payload bytes promised
+beyond the captured ones, 0 for a whole packet) and sum_ok (the TCP checksum
+of a FIN or RST segment, or None), in this order and also readable by
+name: `seamscan.decode.Packet`, or any namedtuple of these fields (the hot
+path unpacks it, the rest reads names); ack is read only for a RST of a
+side with nothing seen.
 
 Contract, in short (the sink's side of it is in `Sink`):
 
@@ -41,6 +43,19 @@ Contract, in short (the sink's side of it is in `Sink`):
   `hold_bytes` counts payload bytes (the device's measure); `hold_total`
   counts what holding costs here: payload plus HELD_CHUNK_COST per held
   chunk, so it bounds the memory held however small the segments.
+* Bytes not captured (a packet cut by the capture's snap length: its `cut`
+  bytes after the captured payload) take their place in the stream: when
+  delivery reaches them they are a gap of reason "not_captured", and the
+  stream goes on after them (a FIN after them is where the segment says).
+  This holds for a cut segment that arrived out of order too. Bytes of the
+  range received whole in another copy are delivered, not given up. A side
+  remembers at most `_LOST_CAP` such ranges ahead of its next byte; beyond
+  that a range's bytes become an ordinary hole. A UDP datagram cut short
+  delivers what was captured, then a "not_captured" gap of the rest (UDP
+  offsets count the datagram's whole length).
+* Every gap has a reason: "not_captured", "hold_cap", "hold_total" or
+  "flow_end" (a hole still open when the flow ended); a hole given up
+  across an uncaptured range is split into gaps of their own reasons.
 * A RST or FIN changes a flow only where the receiver would take it. A RST
   counts when its sequence number lies from the next byte expected of its
   sender to one past the highest sequence number seen of it (see
@@ -68,7 +83,7 @@ Contract, in short (the sink's side of it is in `Sink`):
 Every drop and eviction is counted in `FlowTracker.counters` (see COUNTERS).
 """
 
-from bisect import bisect_right
+from bisect import bisect_right, insort
 from collections import OrderedDict
 from operator import attrgetter, itemgetter
 from typing import Protocol
@@ -95,6 +110,10 @@ CLOSED_WINDOW = 60.0
 # per chunk for chunks of 2 to 1,000 bytes; 208 B covers the allocator's
 # rounding of the bytes object to 8.  The total hold cap counts it.
 HELD_CHUNK_COST = 208
+# Uncaptured ranges a side remembers ahead of its next byte, at most.
+_LOST_CAP = 4096
+# The gap reason of a hole given up, by the counter of its cause.
+_GAP_REASON = {"hold_cap_gaps": "hold_cap", "hold_total_gaps": "hold_total", None: "flow_end"}
 
 COUNTERS: dict[str, str] = {
     "flows": "flows started (TCP and UDP)",
@@ -112,11 +131,15 @@ COUNTERS: dict[str, str] = {
     "inside a range already given up as a gap)",
     "overlap_conflicts": "overlap events: a received range disagreed with bytes received earlier",
     "overlap_bytes": "bytes covered by overlap events (dropped; the earlier bytes won)",
-    "gaps": "gap events (holes given up)",
+    "gaps": "gap events (holes given up); the sum of the four *_gaps counters by reason",
     "gap_bytes": "bytes covered by gap events",
     "hold_cap_gaps": "gaps given up because a flow held more than hold_bytes",
     "hold_total_gaps": "gaps given up because the memory held by all flows (held bytes plus "
     "HELD_CHUNK_COST per held chunk) exceeded hold_total",
+    "flow_end_gaps": "gaps of holes still open when their flow ended",
+    "not_captured_gaps": "gaps of bytes the capture did not hold: a TCP segment or UDP "
+    "datagram cut short by the snap length",
+    "not_captured_bytes": "bytes covered by not_captured gaps",
     "held_bytes_peak": "most out-of-order bytes held at once between packets, all flows",
     "held_memory_peak": "most memory held for out-of-order bytes at once between packets, all "
     "flows: held bytes plus HELD_CHUNK_COST per held chunk (what hold_total bounds)",
@@ -159,11 +182,14 @@ class Sink(Protocol):
         where each non-empty datagram is exactly one call.
         """
 
-    def gap(self, flow, side, offset, length, frame, ts) -> None:
+    def gap(self, flow, side, offset, length, frame, ts, reason) -> None:
         """Bytes [offset, offset+length) of that side will never be delivered.
 
         The next data() of that side starts at offset+length; `frame`/`ts` are
-        those of the first segment received after the hole (or of the FIN).
+        those of the first segment received after the hole (or of the FIN),
+        for "not_captured" those of the packet that was cut. `reason`:
+        "not_captured", "hold_cap", "hold_total" or "flow_end" (see the
+        module docstring).
         """
 
     def overlap(self, flow, side, offset, length, frame, ts) -> None:
@@ -248,7 +274,9 @@ class _Side:
     next byte to deliver. expect: sequence number an in-order segment must
     carry to take the fast path, or -1 (side not started, bytes held, or FIN
     seen). held: sorted, non-overlapping (offset, bytes, frame, ts) beyond
-    next. recent: delivered bytes ending at next, recent_len of them.
+    next. recent: delivered bytes ending at next, recent_len of them. lost:
+    sorted (start, end, frame, ts) ranges of the stream not captured, ahead
+    of next (cut by the snap length).
     """
 
     __slots__ = (
@@ -265,6 +293,7 @@ class _Side:
         "recent",
         "recent_len",
         "resyn",
+        "lost",
     )
 
     def __init__(self, flow, side):
@@ -281,6 +310,7 @@ class _Side:
         self.recent = []
         self.recent_len = 0
         self.resyn = None  # the last SYN at a new sequence number (FlowTracker._reused)
+        self.lost = []
 
 
 def _diff_span(x, y):
@@ -365,7 +395,7 @@ class FlowTracker:
         """Account one decoded packet; emits the sink events it makes due.
         Returns the sender's side (its `flow` may have ended), or None if the
         packet was ignored."""
-        proto, src, dst, sport, dport, seq, _ack, flags, payload, frame, ts, _cut, _sum_ok = pkt
+        proto, src, dst, sport, dport, seq, _ack, flags, payload, frame, ts, cut, _sum_ok = pkt
         if ts >= self._sweep_at:
             self._sweep(ts)
         s = self._sides.get((src, sport, dst, dport, proto))
@@ -381,7 +411,7 @@ class FlowTracker:
         flow.packets[side] += 1
         if proto == TCP:
             self._tcp_touch(flow)
-            if not flags & 7:  # no FIN, SYN or RST
+            if not flags & 7 and not cut:  # no FIN, SYN or RST; captured whole
                 if payload:
                     if seq == s.expect:  # in order, nothing held: deliver as is
                         n = len(payload)
@@ -406,6 +436,8 @@ class FlowTracker:
                 self._data(flow, side, off, payload, frame, ts, True)
                 s.next = off + n
                 flow.bytes[side] += n
+            if cut:
+                self._emit_gap(s, s.next + cut, frame, ts, "not_captured")
         return s
 
     def finish(self) -> None:
@@ -597,14 +629,19 @@ class FlowTracker:
         if d >= _HALF:
             d -= _MOD
         payload = pkt.payload
+        cut = pkt.cut
         if -_WINDOW <= d <= _WINDOW:
             off = s.next + d
+            if cut:
+                self._note_lost(s, off + len(payload), cut, pkt.frame, pkt.ts)
             # The FIN first: bytes held beyond it are dropped before the
             # payload's arrival can deliver them.
             if flags & FIN:
-                self._fin(s, off + len(payload), pkt.frame, pkt.ts)
+                self._fin(s, off + len(payload) + cut, pkt.frame, pkt.ts)
             if payload:
                 self._receive(s, off, payload, pkt.frame, pkt.ts)
+            if s.lost and s.lost[0][0] <= s.next:
+                self._drain(s)
         else:
             self.counters["out_of_window_segments"] += 1
         if flags & RST:
@@ -615,7 +652,7 @@ class FlowTracker:
             self._end_flow(flow, "fin")
             return
         for side in flow._sides:
-            if side.started and not side.held and side.fin is None:
+            if side.started and not side.held and side.fin is None and not side.lost:
                 side.expect = (side.base + side.next) & _MASK
             else:
                 side.expect = -1
@@ -834,37 +871,71 @@ class FlowTracker:
         s.recent_len = self.keep_bytes
 
     def _drain(self, s):
-        """Deliver held chunks that now start at next."""
+        """Deliver held chunks that now start at next, and give up as
+        "not_captured" the uncaptured bytes delivery has reached."""
         held = s.held
-        k = 0
-        done = 0
-        while k < len(held) and held[k][0] == s.next:
-            off, data, frame, ts = held[k]
-            self._deliver(s, off, data, frame, ts)
-            done += len(data)
-            k += 1
-        if k:
-            del held[:k]
-            s.flow._held -= done
-            self._held_total -= done
-            self._held_chunks -= k
+        lost = s.lost
+        while True:
+            k = 0
+            done = 0
+            while k < len(held) and held[k][0] == s.next:
+                off, data, frame, ts = held[k]
+                self._deliver(s, off, data, frame, ts)
+                done += len(data)
+                k += 1
+            if k:
+                del held[:k]
+                s.flow._held -= done
+                self._held_total -= done
+                self._held_chunks -= k
+            while lost and lost[0][1] <= s.next:
+                del lost[0]
+            if not lost or lost[0][0] > s.next:
+                return
+            _, end, frame, ts = lost[0]
+            self._emit_gap(s, min(end, held[0][0]) if held else end, frame, ts, "not_captured")
+
+    def _note_lost(self, s, start, n, frame, ts):
+        """Stream bytes [start, start + n) of side `s` were not captured."""
+        end = start + n
+        if s.fin is not None:
+            end = min(end, s.fin)
+        start = max(start, s.next)
+        if start < end and len(s.lost) < _LOST_CAP:
+            insort(s.lost, (start, end, frame, ts))
 
     def _skip_hole(self, s, cause):
         """Give up the hole before the first held chunk, then deliver what follows it."""
         start, _, frame, ts = s.held[0]
-        self._emit_gap(s, start, frame, ts)
-        if cause:
-            self.counters[cause] += 1
+        self._emit_gap(s, start, frame, ts, _GAP_REASON[cause])
         self._drain(s)
 
-    def _emit_gap(self, s, stop, frame, ts):
-        """Emit the gap [next, stop) and move next past it; the delivered tail restarts."""
+    def _emit_gap(self, s, stop, frame, ts, reason):
+        """Give up [next, stop) as gaps of `reason`, except that the parts not
+        captured are "not_captured" gaps (with the frame that was cut); move
+        next past it; the delivered tail restarts."""
+        lost = s.lost
+        while s.next < stop:
+            while lost and lost[0][1] <= s.next:
+                del lost[0]
+            if lost and lost[0][0] <= s.next:
+                _, end, fr, t = lost[0]
+                self._one_gap(s, min(stop, end), fr, t, "not_captured")
+            else:
+                self._one_gap(s, min(stop, lost[0][0]) if lost else stop, frame, ts, reason)
+
+    def _one_gap(self, s, stop, frame, ts, reason):
+        """Emit the gap [next, stop) of one reason and move next past it."""
         flow = s.flow
         length = stop - s.next
-        self._gap(flow, s.side, s.next, length, frame, ts)
+        self._gap(flow, s.side, s.next, length, frame, ts, reason)
         flow.gaps += 1
-        self.counters["gaps"] += 1
-        self.counters["gap_bytes"] += length
+        counters = self.counters
+        counters["gaps"] += 1
+        counters["gap_bytes"] += length
+        counters[reason + "_gaps"] += 1
+        if reason == "not_captured":
+            counters["not_captured_bytes"] += length
         s.next = stop
         s.recent = []
         s.recent_len = 0
@@ -900,10 +971,15 @@ class FlowTracker:
             self.counters["beyond_fin_bytes"] += dropped
             s.flow._held -= dropped
             self._held_total -= dropped
+        if s.lost:  # no stream bytes lie beyond the FIN, uncaptured or not
+            s.lost[:] = [(a, min(b, at), fr, t) for a, b, fr, t in s.lost if a < at]
 
     def _flush(self, s):
         """At flow end: every hole becomes a gap, held bytes are delivered, up to the FIN."""
         while s.held:
             self._skip_hole(s, None)
+        if s.lost:  # up to the end of the last range known not captured
+            _, end, frame, ts = max(s.lost, key=itemgetter(1))
+            self._emit_gap(s, end, frame, ts, "flow_end")
         if s.fin is not None and s.next < s.fin:
-            self._emit_gap(s, s.fin, s.fin_frame, s.fin_ts)
+            self._emit_gap(s, s.fin, s.fin_frame, s.fin_ts, "flow_end")

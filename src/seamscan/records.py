@@ -18,11 +18,14 @@ import csv
 import json
 import sys
 
-MATCH_FIELDS = ("sig", "transport", "client_ip", "client_port", "server_ip", "server_port",
-                "side", "start", "end", "file", "frame", "ts")
+from seamscan.decode import FATES
 
-# Summary: frame fates, then drops / evictions grouped by what caused them.
-FRAME_FATES = ("decoded", "not_ip", "other_ip", "malformed", "unknown_link", "fragments")
+MATCH_FIELDS = ("sig", "transport", "client_ip", "client_port", "server_ip", "server_port",
+                "side", "start", "end", "file", "frame", "ts", "ts_ns")
+
+# Summary: frame fates (each frame read in exactly one: they add up to
+# ``frames``), then drops / evictions grouped by what caused them.
+FRAME_FATES = FATES
 
 
 def summary_record(counters, elapsed: float) -> dict:
@@ -30,7 +33,9 @@ def summary_record(counters, elapsed: float) -> dict:
     drops = {k: c.get(k, 0) for k in sorted(c) if k.startswith("frag_") and k != "frag_reassembled"}
     flows = {k: c.get(k, 0) for k in sorted(c) if k.startswith(("ended_", "hold_", "gap",
                                                                 "retransmitted",
-                                                                "overlap", "ignored"))}
+                                                                "overlap", "ignored",
+                                                                "not_captured_",
+                                                                "flow_end_"))}
     rest = {k: v for k, v in sorted(c.items())
             if k not in drops and k not in flows and k not in FRAME_FATES
             and k not in ("frames", "bytes_scanned", "matches", "files", "damaged_files",

@@ -39,7 +39,7 @@ _BATCH_BYTES = 1 << 20
 # Room past _BATCH_BYTES: a batch is scanned once it holds _BATCH_BYTES, so
 # the last payload added (an IP datagram: 64 KiB at most) always fits.
 _DATA_CAP = _BATCH_BYTES + (1 << 18)
-META = struct.Struct("=QdI4x")  # per batch item: frame, ts, slot (SF_META_SIZE)
+META = struct.Struct("=QdI4xq")  # per batch item: frame, ts, slot, ts_ns (SF_META_SIZE)
 _META_SIZE = META.size
 _META_PACK = META.pack_into
 _META_UNPACK = META.unpack_from
@@ -169,17 +169,17 @@ class ScanSink:
         n = self.n
         _PACK(self._items, n * _ITEM_SIZE, slot, flags, sc, tr, port, cflags, size, 0, nbytes,
               offset)
-        _META_PACK(self._meta, n * _META_SIZE, frame, ts, slot)
+        _META_PACK(self._meta, n * _META_SIZE, frame, ts, slot, ts.ns)
         self._data[nbytes:nbytes + size] = payload
         self.n = n = n + 1
         self.nbytes = nbytes = nbytes + size
         if n >= _BATCH_ITEMS or nbytes >= _BATCH_BYTES:
             self.flush()
 
-    def gap(self, flow, side, offset, length, frame, ts):
+    def gap(self, flow, side, offset, length, frame, ts, reason):
         self.next_offset[2 * flow.slot + side] = -1
         self._events.append((self.n, self._range_record("gap", flow, side, offset, length,
-                                                        frame, ts)))
+                                                        frame, ts, reason)))
 
     def overlap(self, flow, side, offset, length, frame, ts):
         self._events.append((self.n, self._range_record("overlap", flow, side, offset, length,
@@ -205,16 +205,22 @@ class ScanSink:
         slot = 2 * flow.slot
         c = tuple((slot + side, side + 1, tcode, port, cflags,
                    {"type": "match", "sig": None, **fields, "side": SIDE_NAMES[side],
-                    "start": 0, "end": 0, "file": "", "frame": 0, "ts": 0.0})
+                    "start": 0, "end": 0, "file": "", "frame": 0, "ts": 0.0,
+                    "ts_ns": 0})
                   for side in (0, 1)) + (fields,)
         self.ctx[flow] = c
         self.by_slot[flow.slot] = flow
         return c
 
-    def _range_record(self, kind, flow, side, offset, length, frame, ts):
-        path, frame = self.locate(frame)
-        return {"type": kind, **self._fields(flow), "side": SIDE_NAMES[side], "start": offset,
-                "end": offset + length, "file": path, "frame": frame, "ts": ts}
+    def _range_record(self, kind, flow, side, offset, length, frame, ts, reason=None):
+        rec = {"type": kind, **self._fields(flow), "side": SIDE_NAMES[side], "start": offset,
+               "end": offset + length}
+        if reason is not None:  # a gap's
+            rec["reason"] = reason
+        rec["file"], rec["frame"] = self.locate(frame)
+        rec["ts"] = float(ts)
+        rec["ts_ns"] = ts.ns
+        return rec
 
     def _fields(self, flow):
         c = self.ctx.get(flow)
@@ -294,7 +300,7 @@ class ScanSink:
         last = self._last  # the item whose flow, frame, ts and template are at hand
         base, path = self.base, self.path
         if last >= 0:
-            flow, template, where, frame, ts = self._at
+            flow, template, where, frame, ts, ts_ns = self._at
         for item, sig, start, end in found:
             while item >= due:
                 self._event(events[ei][1])
@@ -302,7 +308,7 @@ class ScanSink:
                 due = events[ei][0] if ei < len(events) else self.n
             if item != last:
                 last = item
-                frame, ts, slot = _META_UNPACK(meta, item * _META_SIZE)
+                frame, ts, slot, ts_ns = _META_UNPACK(meta, item * _META_SIZE)
                 fslot = slot >> 1
                 flow = by_slot[fslot] if fslot not in retired else self._owner(fslot, item)
                 template = ctx[flow][slot & 1][5]
@@ -318,11 +324,12 @@ class ScanSink:
             record["file"] = where
             record["frame"] = frame
             record["ts"] = ts
+            record["ts_ns"] = ts_ns
             emit(record)
         self._ei = ei
         self._last = last
         if last >= 0:
-            self._at = (flow, template, where, frame, ts)
+            self._at = (flow, template, where, frame, ts, ts_ns)
 
     def _event(self, ev):
         if isinstance(ev, dict):
@@ -351,8 +358,10 @@ def fastpath_enabled() -> bool:
 
 
 def flow_record(flow, fields, path) -> dict:
-    return {"type": "flow", **fields, "file": path, "first_ts": flow.first_ts,
-            "last_ts": flow.last_ts, "client_packets": flow.packets[CLIENT],
+    first, last = flow.first_ts, flow.last_ts
+    return {"type": "flow", **fields, "file": path, "first_ts": float(first),
+            "first_ts_ns": first.ns, "last_ts": float(last), "last_ts_ns": last.ns,
+            "client_packets": flow.packets[CLIENT],
             "server_packets": flow.packets[1], "client_bytes": flow.bytes[CLIENT],
             "server_bytes": flow.bytes[1], "matches": flow.matches, "gaps": flow.gaps,
             "overlaps": flow.overlaps, "end": flow.end_reason}
