@@ -35,6 +35,18 @@ sent the bytes, end exclusive; frame is the 1-based record number, in its
 file, of the packet that completed the match (carried its last byte; with
 reordered segments that can precede the packet that filled the hole).
 
+The table format lists at most 1000 lines per flow (100000 over all open
+flows) and summarises the rest per side and signature (count, first start,
+last end, frames), so memory stays bounded; jsonl and csv have every record.
+
+File names that are not UTF-8 appear with each such byte as \\xNN (Python's
+backslashreplace form: the bytes caf\\xe9.pcap show as caf\\xe9.pcap) in
+every format and message; every output is valid UTF-8.
+
+Exit codes: 0 success; 2 usage error, a missing or unreadable file, or a bad
+signature set; 3 damaged input, a capture or table image (every record found
+before the damage is written, then an error record).
+
 Examples:
   seamscan scan pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml
   seamscan scan lab.pcapng --table device.seam --format jsonl -o out.jsonl
@@ -118,7 +130,18 @@ def build_parser() -> argparse.ArgumentParser:
     return ap
 
 
+def _escape_names_on_console() -> None:
+    """Text we print that holds a file name which is not UTF-8 shows it as
+    ``\\xNN`` (``seamscan.filenames``) instead of failing or writing raw bytes."""
+    from seamscan.filenames import ERRORS
+
+    for stream in (sys.stdout, sys.stderr):
+        if hasattr(stream, "reconfigure"):
+            stream.reconfigure(errors=ERRORS)
+
+
 def main(argv=None) -> int:
+    _escape_names_on_console()
     ap = build_parser()
     args = ap.parse_args(argv)
     if args.version:
@@ -144,7 +167,9 @@ def main(argv=None) -> int:
 
 
 def _fail(message: str, code: int) -> int:
-    print(f"seamscan: {message}", file=sys.stderr)
+    from seamscan.filenames import shown
+
+    print(f"seamscan: {shown(message)}", file=sys.stderr)
     return code
 
 

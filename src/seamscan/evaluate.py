@@ -827,9 +827,12 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
     :func:`load_profile`; ``options`` are the host run's
     :class:`~seamscan.replay.ReplayOptions` (default: scan's).  Raises
     :class:`~seamscan.compiler.CompileError` when a set cannot be compiled at
-    all; damaged captures are reported in ``captures[].error``.
+    all; damaged captures are reported in ``captures[].error``.  Every string
+    is valid UTF-8: a file name that is not shows its other bytes as ``\\xNN``
+    (:mod:`seamscan.filenames`).
     """
     from seamscan import engine
+    from seamscan.filenames import shown_all
     from seamscan.replay import ReplayOptions
 
     options = options or ReplayOptions()
@@ -868,7 +871,7 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
                                        hold_bytes=profile.hold_bytes)
         dev_run = run_captures(captures, device_table or table, dev_opts)
         report["device"] = compare_device(run, dev_run, profile, fit)
-    return report
+    return shown_all(report)
 
 
 # --- command line ------------------------------------------------------------
@@ -885,6 +888,9 @@ Device profile (--profile): a TOML file with any of
 
 Exit codes: 0 done; 2 usage error or a bad signature set, labels file or
 profile (file and line named); 3 a damaged capture (rated up to the damage).
+
+File names that are not UTF-8 appear with each such byte as \\xNN (Python's
+backslashreplace form) in the tables, report.json, report.html and messages.
 
 Examples:
   seamscan rate pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml \\
@@ -934,7 +940,9 @@ def add_rate_parser(subparsers):
 
 
 def _fail(message: str, code: int = EXIT_USAGE) -> int:
-    print(f"seamscan: {message}", file=sys.stderr)
+    from seamscan.filenames import shown
+
+    print(f"seamscan: {shown(message)}", file=sys.stderr)
     return code
 
 
@@ -943,6 +951,7 @@ def cmd_rate(args) -> int:
     (signature set, labels, profile), 3 a damaged capture (reported, the rest
     rated)."""
     from seamscan.compiler import CompileError
+    from seamscan.filenames import shown
     from seamscan.signatures import SignatureError, load_signatures
 
     for path in args.captures:
@@ -976,7 +985,7 @@ def cmd_rate(args) -> int:
             written = render.write_report(report, args.report)
         except OSError as err:
             return _fail(f"{err.filename or args.report}: cannot write: {err.strerror}")
-        print("wrote " + ", ".join(written), file=sys.stderr)
+        print("wrote " + shown(", ".join(written)), file=sys.stderr)
     damaged = [c for c in report["captures"] if c["error"]]
     for c in damaged:
         print(f"seamscan: damaged capture: {c['error']}; everything before the damage was "
