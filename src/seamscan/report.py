@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import base64
 import csv
+import datetime
 import html
 import io
 import json
@@ -52,6 +53,26 @@ def clock(ts, date: bool = False) -> str:
     whole = int(ts // 1)
     text = time.strftime("%Y-%m-%d %H:%M:%S" if date else "%H:%M:%S", time.gmtime(whole))
     return f"{text}.{int((ts - whole) * 1000):03d}"
+
+
+def spans_days(first, last) -> bool:
+    """True when capture times ``first`` and ``last`` fall on different UTC days."""
+    if first is None or last is None:
+        return False
+    return time.gmtime(int(first // 1))[:3] != time.gmtime(int(last // 1))[:3]
+
+
+def time_range(first, last) -> str:
+    """``1999-11-11 21:46:16.000 .. 1999-11-13 01:13:40.277`` (UTC): the end's date
+    is left out only when it is the start's day; ``-`` for none."""
+    if first is None:
+        return "-"
+    return f"{clock(first, True)} .. {clock(last, spans_days(first, last))}"
+
+
+def _dated(report) -> bool:
+    """Whether the report's time columns need the date: its capture time spans days."""
+    return spans_days(report["set"]["first_ts"], report["set"]["last_ts"])
 
 
 def size(n: int) -> str:
@@ -121,7 +142,7 @@ def _head(r) -> list[str]:
     damaged = sum(1 for c in r["captures"] if c["error"])
     span = ""
     if s["first_ts"] is not None:
-        span = f", {clock(s['first_ts'], True)} .. {clock(s['last_ts'])} UTC"
+        span = f", {time_range(s['first_ts'], s['last_ts'])} UTC"
     lines = [f"{rules['path']}{_set_name(rules)}: {plural(rules['signatures'], 'signature')} "
              f"rated on {plural(len(r['captures']), 'capture')}"
              + (f" ({damaged} damaged)" if damaged else ""),
@@ -144,9 +165,11 @@ def _signature_table(r) -> list[str]:
         head += ["tp", "fp", "fn", "prec", "recall"]
     head.append("label")
     rows = []
+    dated = _dated(r)
     for s in r["signatures"]:
         row = [s["id"], s["matches"], s["flows"], f"{s['share']:.1%}", _sides(s),
-               f"{s['clients']}/{s['servers']}", clock(s["first_ts"]), clock(s["last_ts"])]
+               f"{s['clients']}/{s['servers']}", clock(s["first_ts"], dated),
+               clock(s["last_ts"], dated)]
         if scored:
             sc = s["scores"]
             row += [sc["tp"], sc["fp"], sc["fn"], ratio(sc["precision"], 2),
@@ -377,21 +400,53 @@ def _bars(plt, names, values, colors, xlabel) -> bytes:
     return _png(fig)
 
 
+DATE_AXIS_SECONDS = 3600  # a longer capture's timeline shows dates and times, not seconds
+
+
 def _timeline(plt, flows) -> bytes:
+    return _png(timeline_figure(plt, flows))
+
+
+def timeline_figure(plt, flows):
+    """Cumulative flows seen and flagged over capture time.  The x axis is
+    seconds after the first flow for a capture shorter than
+    ``DATE_AXIS_SECONDS``; a longer one gets UTC dates and times that
+    matplotlib's concise date formatter spaces and abbreviates (the date
+    stays on the axis, however many days)."""
+    from matplotlib import dates as mdates
+
     t0 = min(f["first_ts"] for f in flows if f["first_ts"] is not None)
-    seen = sorted(f["first_ts"] - t0 for f in flows if f["first_ts"] is not None)
-    flagged = sorted(f["first_match_ts"] - t0 for f in flows if f["first_match_ts"] is not None)
+    seen = sorted(f["first_ts"] for f in flows if f["first_ts"] is not None)
+    flagged = sorted(f["first_match_ts"] for f in flows if f["first_match_ts"] is not None)
+    long_capture = max(seen + flagged) - t0 >= DATE_AXIS_SECONDS
+    if long_capture:
+        day = 86400.0
+        epoch = mdates.date2num(datetime.datetime(1970, 1, 1, tzinfo=datetime.UTC))
+
+        def x(ts):
+            return epoch + ts / day
+    else:
+        def x(ts):
+            return ts - t0
     fig, ax = plt.subplots(figsize=(7.5, 3.0))
     for xs, label, color in ((seen, "flows seen", "#8a8a8a"),
                              (flagged, "flows flagged", "#b8413c")):
         if xs:
-            ax.step([0, *xs], [0, *range(1, len(xs) + 1)], where="post", label=label,
-                    color=color)
-    ax.set_xlabel(f"capture seconds after {clock(t0, True)} UTC")
+            ax.step([x(t0), *map(x, xs)], [0, *range(1, len(xs) + 1)], where="post",
+                    label=label, color=color)
+    if long_capture:
+        locator = mdates.AutoDateLocator(tz=datetime.UTC, minticks=3, maxticks=8)
+        ax.xaxis.set_major_locator(locator)
+        # a day tick says its month ("Nov 12", not "12"); the year is in the offset
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(
+            locator, tz=datetime.UTC, formats=["%Y", "%b", "%b %d", "%H:%M", "%H:%M", "%S.%f"]))
+        ax.set_xlabel(f"capture time (UTC), from {clock(t0, True)}")
+    else:
+        ax.set_xlabel(f"capture seconds after {clock(t0, True)} UTC")
     ax.set_ylabel("flows (cumulative)")
     ax.yaxis.get_major_locator().set_params(integer=True)
     ax.legend(loc="upper left", frameon=False)
-    return _png(fig)
+    return fig
 
 
 # --- HTML ---------------------------------------------------------------------
@@ -452,7 +507,7 @@ def render_html(report: dict, charts: dict) -> str:
            f"<p class=muted>{_e(_set_name(rules).strip(' ()') or 'unnamed set')}; "
            f"{plural(rules['signatures'], 'signature')} on "
            f"{_e(', '.join(c['path'] for c in report['captures']))}; "
-           f"capture time {_e(clock(s['first_ts'], True))} .. {_e(clock(s['last_ts'], True))} UTC"
+           f"capture time {_e(time_range(s['first_ts'], s['last_ts']))} UTC"
            "</p>"]
     cards = [("flows", s["flows"]), ("flagged", f"{s['flows_flagged']} ({s['flagged_share']:.0%})"),
              ("matches", s["matches"]), ("scanned", size(s["bytes_scanned"])),
@@ -471,9 +526,11 @@ def render_html(report: dict, charts: dict) -> str:
     head = ["signature", "matches", "flows", "share", "by side", "hosts", "first seen",
             "last seen"] + (["TP", "FP", "FN", "precision", "recall"] if scored else []) + ["label"]
     rows = []
+    dated = _dated(report)
     for g in report["signatures"]:
         row = [g["id"], g["matches"], g["flows"], f"{g['share']:.1%}", _sides(g),
-               f"{g['clients']}/{g['servers']}", clock(g["first_ts"]), clock(g["last_ts"])]
+               f"{g['clients']}/{g['servers']}", clock(g["first_ts"], dated),
+               clock(g["last_ts"], dated)]
         if scored:
             sc = g["scores"]
             row += [sc["tp"], sc["fp"], sc["fn"], ratio(sc["precision"]), ratio(sc["recall"])]
@@ -510,10 +567,11 @@ def _html_flows(report) -> str:
     if labelled:
         head += ["expected", "verdict"]
     rows = []
+    dated = _dated(report)
     for f in shown:
         row = [_Raw(f"{_e(flow_text(f))}<br><span class=muted>"
                     f"{_e(', '.join(os.path.basename(p) for p in f['files']))}</span>"),
-               clock(f["first_ts"]), f["matches"],
+               clock(f["first_ts"], dated), f["matches"],
                ", ".join(f"{k}×{v}" if v > 1 else k for k, v in f["signatures"].items()) or "-"]
         if labelled:
             row += [", ".join(f["expect"]) if f["expect"] else "-", VERDICT_WORDS[f["verdict"]]]
