@@ -338,10 +338,11 @@ def draw_charts(report: dict) -> dict[str, tuple[str, bytes]]:
             caption = "Matches per signature" + (
                 f" (the {len(sigs)} with most matches of {len(report['signatures'])})"
                 if len(sigs) < len(report["signatures"]) else "")
+            noisy = any(s["noisy"] for s in sigs)
             charts["hits"] = (caption, _bars(plt, [s["id"] for s in sigs],
                                              [s["matches"] for s in sigs],
                                              ["#d9822b" if s["noisy"] else "#3b6ea8" for s in sigs],
-                                             "matches (orange: noisy)"))
+                                             "matches (orange: noisy)" if noisy else "matches"))
         flows = report["flows"]
         if flows:
             charts["timeline"] = ("Flows seen and flagged over capture time",
@@ -521,6 +522,7 @@ def render_html(report: dict, charts: dict) -> str:
     for c in report["captures"]:
         if c["error"]:
             out.append(f"<p class=bad>Damaged capture: {_e(c['error'])}</p>")
+    out.append(_html_captures(report["captures"]))
     out.append("<h2>Signatures</h2>" + _figure(charts, "hits"))
     scored = report["labels"] is not None
     head = ["signature", "matches", "flows", "share", "by side", "hosts", "first seen",
@@ -556,6 +558,19 @@ def render_html(report: dict, charts: dict) -> str:
     out.append("<p class=muted>Written by seamscan rate. Times are capture times (UTC); a flow "
                "is a 5-tuple over all captures given.</p></body></html>\n")
     return "\n".join(out)
+
+
+def _html_captures(captures) -> str:
+    """One row per capture file: frames, flows, matches, bytes scanned, damage."""
+    rows = [[c["path"], f"{c['frames']:,}", f"{c['flows']:,}", f"{c['matches']:,}",
+             size(c["bytes_scanned"]), _Raw(f"<span class=bad>{_e(c['error'])}</span>")
+             if c["error"] else "none"] for c in captures]
+    return ("<h2>Captures</h2>"
+            + _table(["capture", "frames", "flows", "matches", "scanned", "damage"], rows,
+                     {1, 2, 3, 4}, {5})
+            + "<p class=muted>flows: flow records of that file (a flow that ended, was "
+            "evicted or was still open at the end of the file); damage: where the file "
+            "broke, everything before it counted</p>")
 
 
 def _html_flows(report) -> str:
@@ -625,14 +640,16 @@ def _html_against(ab, charts) -> str:
         rows.append([what, fmt(d["old"]), fmt(d["new"]),
                      signed(d["delta"], 3 if key in ("precision", "recall") else 0)])
     parts = [f"<h2>Against {_e(ab['rules']['path'])}</h2>",
-             _table(["", "old", "new", "change"], rows, {1, 2, 3}), _figure(charts, "ab")]
+             _table(["measure", "old", "new", "change"], rows, {1, 2, 3}),
+             _figure(charts, "ab")]
     sig_rows = ([["added", a["id"], "-", a["matches"], signed(a["matches"]), ""]
                  for a in sg["added"]]
                 + [["removed", a["id"], a["matches"], "-", signed(-a["matches"]), ""]
                    for a in sg["removed"]]
                 + [["changed", c["id"], c["old_matches"], c["new_matches"], signed(c["delta"]),
                     "yes" if c["redefined"] else ""] for c in sg["changed"]])
-    parts.append(_table(["", "signature", "old matches", "new matches", "change", "redefined"],
+    parts.append(_table(["what", "signature", "old matches", "new matches", "change",
+                         "redefined"],
                         sig_rows, {2, 3, 4}) if sig_rows
                  else "<p class=muted>No signature changed its hits.</p>")
     parts.append(f"<p>{len(sg['unchanged'])} unchanged" + (
@@ -640,7 +657,7 @@ def _html_against(ab, charts) -> str:
     flow_rows = ([[flow_text(i), "gained", ", ".join(i["signatures"])] for i in ab["flows"]["gained"]]
                  + [[flow_text(i), "lost", ", ".join(i["signatures"])] for i in ab["flows"]["lost"]])
     if flow_rows:
-        parts.append(_table(["flow", "", "signatures"], flow_rows))
+        parts.append(_table(["flow", "gained or lost", "signatures"], flow_rows))
     return "\n".join(parts)
 
 
@@ -653,7 +670,7 @@ def _html_device(dev, charts) -> str:
                     [[f"{p['max_flows']:,}", f"{p['hold_bytes']:,}", p["layout"],
                       "-" if p["budget"] is None else f"{p['budget']:,}"]]),
              f"<p>Table {fit}: {_e(t['message'])}</p>",
-             _table(["", "host", "device"],
+             _table(["measure", "host", "device"],
                     [["flows", fl["host"], fl["device"]], ["evictions", 0, fl["evicted"]],
                      ["picked up with roles swapped", "-", fl["swapped"]],
                      ["gaps", g["host"], g["device"]],
@@ -667,7 +684,8 @@ def _html_device(dev, charts) -> str:
             + [["extra", i["signature"], flow_text(i), i["host"], i["device"]]
                for i in dev["extra"]["by_flow"]])
     if rows:
-        parts.append(_table(["", "signature", "flow", "host", "device"], rows, {3, 4}))
+        parts.append(_table(["missed or extra", "signature", "flow", "host matches",
+                             "device matches"], rows, {3, 4}))
     if fl["evicted_flows"]:
         parts.append("<h3>Evicted flows</h3>" + _table(
             ["flow", "times"], [[flow_text(i), i["times"]] for i in fl["evicted_flows"]], {1}))
