@@ -35,6 +35,7 @@ import seamscan
 from seamscan.image import TableError
 from seamscan.reference import reference_matches
 from seamscan.signatures import signature_set
+from toolchains import skip_message
 from vectors import VECTORS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -76,9 +77,9 @@ def _make(out: Path, *targets: str, **variables: str) -> subprocess.CompletedPro
 @pytest.fixture(scope="session")
 def build_dir(tmp_path_factory) -> Path:
     if shutil.which("make") is None:
-        pytest.skip("no `make` on this machine: the C harness cannot be built")
+        pytest.skip(skip_message("no `make` on this machine: the C harness cannot be built", "make"))
     if shutil.which(os.environ.get("CC", "cc")) is None:
-        pytest.skip("no C compiler (cc, or $CC) on this machine")
+        pytest.skip(skip_message("no C compiler (cc, or $CC) on this machine", "cc"))
     return tmp_path_factory.mktemp("csrc-build")
 
 
@@ -93,7 +94,8 @@ def seamrun(build_dir) -> Path:
 def seamrun_asan(build_dir) -> Path:
     r = _make(build_dir, "seamrun-asan")
     if r.returncode != 0 and re.search(r"asan|ubsan|sanitize", r.stderr, re.I):
-        pytest.skip(f"the C compiler cannot build with ASan/UBSan here: {r.stderr.strip()[:300]}")
+        pytest.skip(skip_message("the C compiler cannot build with ASan/UBSan here: "
+                                  f"{r.stderr.strip()[:300]}", "gcc sanitizers"))
     assert r.returncode == 0, f"building csrc/seamrun-asan failed:\n{r.stdout}{r.stderr}"
     return build_dir / "seamrun-asan"
 
@@ -129,7 +131,7 @@ def _indexed(table, matches) -> list[tuple[int, int, int]]:
 @pytest.mark.parametrize("compiler", ["gcc", "clang"])
 def test_runtime_compiles_warning_free(compiler, build_dir):
     if shutil.which(compiler) is None:
-        pytest.skip(f"{compiler} is not installed")
+        pytest.skip(skip_message(f"{compiler} is not installed", compiler))
     r = _make(build_dir, "check-warnings", WARN_CCS=compiler)
     assert r.returncode == 0, f"{compiler} -std=c99 -Wall -Wextra -Werror -pedantic:\n{r.stdout}{r.stderr}"
     assert "warning" not in r.stderr
@@ -156,7 +158,7 @@ def test_runtime_calls_nothing_beyond_string_h(build_dir):
     """The objects' undefined symbols: only <string.h> functions (no libc otherwise)."""
     cc = os.environ.get("CC", "cc")
     if shutil.which("nm") is None:
-        pytest.skip("no `nm` to list undefined symbols")
+        pytest.skip(skip_message("no `nm` to list undefined symbols", "nm"))
     undefined, defined = set(), set()
     for src in RUNTIME_SOURCES:
         obj = build_dir / f"free-{src.stem}.o"
@@ -170,7 +172,8 @@ def test_runtime_calls_nothing_beyond_string_h(build_dir):
 
 def _m4_sizes(build_dir) -> dict[str, tuple[int, int, int]]:
     if shutil.which("arm-none-eabi-gcc") is None or shutil.which("arm-none-eabi-size") is None:
-        pytest.skip("no arm-none-eabi toolchain")
+        pytest.skip(skip_message("no arm-none-eabi toolchain", "arm-none-eabi-gcc",
+                                  "arm-none-eabi-size"))
     r = _make(build_dir, "sizes-m4")
     assert r.returncode == 0, r.stdout + r.stderr
     found = re.findall(r"(\w+)\s+code (\d+) B, read-only data (\d+) B, \.data\+\.bss (\d+) B",

@@ -48,6 +48,7 @@ import pytest
 
 import seamscan
 from seamscan.signatures import signature_set
+from toolchains import skip_message
 from vectors import LAYOUTS, VECTORS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -145,14 +146,14 @@ def _first_difference(got, want) -> str:
 @pytest.fixture(scope="module")
 def build_dir(tmp_path_factory) -> Path:
     if shutil.which("make") is None:
-        pytest.skip("no `make` on this machine: the C harness cannot be built")
+        pytest.skip(skip_message("no `make` on this machine: the C harness cannot be built", "make"))
     return tmp_path_factory.mktemp("cross-build")
 
 
 @pytest.fixture(scope="module")
 def host(build_dir) -> Harness:
     if shutil.which(os.environ.get("CC", "cc")) is None:
-        pytest.skip("no host C compiler (cc, or $CC)")
+        pytest.skip(skip_message("no host C compiler (cc, or $CC)", "cc"))
     r = _make(build_dir, "seamrun")
     assert r.returncode == 0, f"building csrc/seamrun failed:\n{r.stdout}{r.stderr}"
     return Harness("host", [str(build_dir / "seamrun")])
@@ -166,10 +167,11 @@ def target(request, build_dir) -> tuple[Target, Harness]:
     spec: Target = request.param
     for tool in (spec.compiler, spec.qemu):
         if shutil.which(tool) is None:
-            pytest.skip(f"{tool} is not installed (apt: see .ci/run)")
+            pytest.skip(skip_message(f"{tool} is not installed", spec.compiler, spec.qemu))
     r = _make(build_dir, spec.make_target)
     if r.returncode != 0 and any(mark in r.stderr for mark in _MISSING_LIBC):
-        pytest.skip(f"{spec.compiler} has no static C library here: {r.stderr.strip()[:300]}")
+        pytest.skip(skip_message(f"{spec.compiler} has no static C library here: "
+                                  f"{r.stderr.strip()[:300]}", spec.compiler))
     assert r.returncode == 0, f"make {spec.make_target} failed:\n{r.stdout}{r.stderr}"
     binary = build_dir / spec.make_target
     return spec, Harness(spec.name, [spec.qemu, str(binary)])

@@ -37,6 +37,7 @@ from seamscan import export
 from seamscan.export import c_header, c_string, valid_symbol
 from seamscan.reference import reference_matches
 from seamscan.signatures import signature_set
+from toolchains import skip_message
 from vectors import LAYOUTS, VECTORS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -58,7 +59,7 @@ def _run(cmd, timeout=300) -> subprocess.CompletedProcess:
 
 def _need(compiler: str) -> str:
     if shutil.which(compiler) is None:
-        pytest.skip(f"{compiler} is not installed")
+        pytest.skip(skip_message(f"{compiler} is not installed", compiler))
     return compiler
 
 

@@ -36,6 +36,7 @@ import seamscan
 from seamscan import capture, fastpath, replay
 from seamscan.decode import Decoder
 from seamscan.replay import ReplayOptions, replay_file
+from toolchains import skip_message
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "pcaps_demo"
@@ -554,11 +555,11 @@ def test_lane_under_sanitizers(tmp_path):
 
     gcc = shutil.which("gcc")
     if gcc is None:
-        pytest.skip("gcc not found")
+        pytest.skip(skip_message("gcc not found", "gcc"))
     libs = [subprocess.run([gcc, f"-print-file-name={name}"], capture_output=True,
                            text=True).stdout.strip() for name in ("libasan.so", "libubsan.so")]
     if not all(Path(lib).is_file() for lib in libs):
-        pytest.skip("the sanitizer runtimes are not installed")
+        pytest.skip(skip_message("the sanitizer runtimes are not installed", "gcc sanitizers"))
     out = tmp_path / "sanitized"
     subprocess.run([sys.executable, str(ROOT / "tools" / "build_sanitized.py"), str(out)],
                    check=True, capture_output=True)

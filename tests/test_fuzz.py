@@ -36,6 +36,7 @@ import pytest
 
 import seamscan
 from seamscan.signatures import signature_set
+from toolchains import skip_message
 from vectors import LAYOUTS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -247,17 +248,19 @@ def _assert_clean(r: subprocess.CompletedProcess, what: str) -> None:
 @pytest.fixture(scope="module")
 def build_dir(tmp_path_factory) -> Path:
     if shutil.which("make") is None:
-        pytest.skip("no `make` on this machine: the fuzz target cannot be built")
+        pytest.skip(skip_message("no `make` on this machine: the fuzz target cannot be built",
+                                  "make"))
     return tmp_path_factory.mktemp("fuzz-build")
 
 
 @pytest.fixture(scope="module")
 def replay(build_dir) -> Path:
     if shutil.which("gcc") is None:
-        pytest.skip("no gcc for the replay build of the fuzz target")
+        pytest.skip(skip_message("no gcc for the replay build of the fuzz target", "gcc"))
     r = _make(build_dir, "fuzz-seam-replay", CC="gcc")
     if r.returncode != 0 and re.search(r"asan|ubsan|sanitize", r.stderr, re.I):
-        pytest.skip(f"gcc cannot build with ASan/UBSan here: {r.stderr.strip()[:300]}")
+        pytest.skip(skip_message(f"gcc cannot build with ASan/UBSan here: {r.stderr.strip()[:300]}",
+                                  "gcc sanitizers"))
     assert r.returncode == 0, f"building the fuzz replay driver failed:\n{r.stdout}{r.stderr}"
     return build_dir / "fuzz-seam-replay"
 
@@ -265,10 +268,11 @@ def replay(build_dir) -> Path:
 @pytest.fixture(scope="module")
 def fuzzer(build_dir) -> Path:
     if shutil.which("clang") is None:
-        pytest.skip("no clang: libFuzzer needs it")
+        pytest.skip(skip_message("no clang: libFuzzer needs it", "libFuzzer"))
     r = _make(build_dir, "fuzz-seam")
     if r.returncode != 0 and re.search(r"fuzzer|libclang_rt|asan|sanitize", r.stderr, re.I):
-        pytest.skip(f"clang has no libFuzzer / sanitizer runtime here: {r.stderr.strip()[:300]}")
+        pytest.skip(skip_message("clang has no libFuzzer / sanitizer runtime here: "
+                                  f"{r.stderr.strip()[:300]}", "libFuzzer"))
     assert r.returncode == 0, f"building the libFuzzer target failed:\n{r.stdout}{r.stderr}"
     return build_dir / "fuzz-seam"
 

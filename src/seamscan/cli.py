@@ -39,6 +39,18 @@ Several captures are one continuous capture, read in the order given (the
 files of a rotated ring): flows and streams carry on from one file into the
 next; --each-file replays each on its own.
 
+The table format lists at most 1000 lines per flow (100000 over all open
+flows) and summarises the rest per side and signature (count, first start,
+last end, frames), so memory stays bounded; jsonl and csv have every record.
+
+File names that are not UTF-8 appear with each such byte as \\xNN (Python's
+backslashreplace form: the bytes caf\\xe9.pcap show as caf\\xe9.pcap) in
+every format and message; every output is valid UTF-8.
+
+Exit codes: 0 success; 2 usage error, a missing or unreadable file, or a bad
+signature set; 3 damaged input, a capture or table image (every record found
+before the damage is written, then an error record).
+
 Examples:
   seamscan scan pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml
   seamscan scan lab.pcapng --table device.seam --format jsonl -o out.jsonl
@@ -105,8 +117,10 @@ def build_parser() -> argparse.ArgumentParser:
     co = sub.add_parser("compile", help="compile a signature set into a table image",
                         description="Compile a signature set into a table image (.seam): the "
                         "exact bytes the host scans with and a device loads.")
-    co.add_argument("rules", metavar="SET.toml")
-    co.add_argument("-o", "--output", metavar="TABLE.seam", required=True)
+    co.add_argument("rules", metavar="SET.toml", help="the signature set (TOML) to compile")
+    co.add_argument("-o", "--output", metavar="TABLE.seam", required=True,
+                    help="where to write the table image (required): the exact bytes "
+                    "'scan --table' and a device load")
     co.add_argument("--layout", default="auto", choices=("dense", "compact", "auto"),
                     help="dense: one lookup per byte, largest; compact: own transitions and "
                     "failure links, a few bytes per state, at most 2 steps per byte amortised; "
@@ -118,22 +132,36 @@ def build_parser() -> argparse.ArgumentParser:
                     "array, size and CRC macros, signature ids and labels)")
     co.add_argument("--symbol", metavar="NAME",
                     help="C identifier for the header's array (default: from the output name)")
-    co.add_argument("--max-states", type=int, metavar="N", help="automaton state cap")
+    co.add_argument("--max-states", type=int, metavar="N",
+                    help="give up when the automaton needs more than N states, naming the "
+                    "signatures that cost the most (default 2,000,000)")
     co.add_argument("--no-speed", action="store_true",
                     help="skip the host speed measurement in the report")
-
-    from seamscan.evaluate import add_rate_parser
-
-    add_rate_parser(sub)
 
     ins = sub.add_parser("inspect", help="validate a table image and print its header",
                          description="Validate a table image (CRC, every bound) and print its "
                          "header and statistics. A damaged image exits 3.")
-    ins.add_argument("table", metavar="TABLE.seam")
+    ins.add_argument("table", metavar="TABLE.seam",
+                     help="a table image written by 'seamscan compile' (or read off a device)")
+
+    from seamscan.evaluate import add_rate_parser
+
+    add_rate_parser(sub)  # last, as in DESCRIPTION
     return ap
 
 
+def _escape_names_on_console() -> None:
+    """Text we print that holds a file name which is not UTF-8 shows it as
+    ``\\xNN`` (``seamscan.filenames``) instead of failing or writing raw bytes."""
+    from seamscan.filenames import ERRORS
+
+    for stream in (sys.stdout, sys.stderr):
+        if hasattr(stream, "reconfigure"):
+            stream.reconfigure(errors=ERRORS)
+
+
 def main(argv=None) -> int:
+    _escape_names_on_console()
     ap = build_parser()
     args = ap.parse_args(argv)
     if args.version:
@@ -159,7 +187,9 @@ def main(argv=None) -> int:
 
 
 def _fail(message: str, code: int) -> int:
-    print(f"seamscan: {message}", file=sys.stderr)
+    from seamscan.filenames import shown
+
+    print(f"seamscan: {shown(message)}", file=sys.stderr)
     return code
 
 
@@ -385,20 +415,22 @@ def layout_report(tables: dict, budget=None, sample=None) -> str:
     """Per layout: bytes, automaton bytes per state, steps per byte, host speed, fit."""
     from seamscan import engine
 
-    head = f"  {'layout':<8} {'bytes':>12} {'per state':>9} {'state ids':>9} {'steps/byte':>12}"
-    head += f" {'host MB/s':>9}" if sample is not None else ""
+    # two spaces between columns, so that no two headers read as one
+    head = (f"  {'layout':<8}  {'image bytes':>11}  {'bytes/state':>11}  {'state ids':>9}  "
+            f"{'steps/byte':>11}")
+    head += f"  {'host MB/s':>9}" if sample is not None else ""
     head += "  budget" if budget is not None else ""
     lines = [head]
     for name, table in tables.items():
-        row = (f"  {name:<8} {table.nbytes:>12,} {automaton_bytes(table) / table.states:>9.2f} "
-               f"{table.header.trans_width * 8:>6}-bit {STEPS.get(name, '?'):>12}")
+        row = (f"  {name:<8}  {table.nbytes:>11,}  {automaton_bytes(table) / table.states:>11.2f}"
+               f"  {table.header.trans_width * 8:>5}-bit  {STEPS.get(name, '?'):>11}")
         if sample is not None:
-            row += f" {engine.measure_speed(table, sample):>9.0f}"
+            row += f"  {engine.measure_speed(table, sample):>9.0f}"
         if budget is not None:
             row += "  fits" if table.nbytes <= budget else "  does not fit"
         lines.append(row)
-    lines.append("  (per state: the image less signature records, ports and names, over the "
-                 "states; steps: state visits per byte)")
+    lines.append("  (bytes/state: the image less signature records, ports and names, over the "
+                 "states; steps/byte: state visits per byte)")
     for name, table in tables.items():
         lines.append(f"  {name} sections:")
         lines.extend(_sections(table))

@@ -837,9 +837,12 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
     are one continuous capture in the order given, or with ``each_file``
     each replayed on its own.  Raises
     :class:`~seamscan.compiler.CompileError` when a set cannot be compiled at
-    all; damaged captures are reported in ``captures[].error``.
+    all; damaged captures are reported in ``captures[].error``.  Every string
+    is valid UTF-8: a file name that is not shows its other bytes as ``\\xNN``
+    (:mod:`seamscan.filenames`).
     """
     from seamscan import engine
+    from seamscan.filenames import shown_all
     from seamscan.replay import ReplayOptions
 
     options = options or ReplayOptions()
@@ -880,7 +883,7 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
         dev_run = run_captures(captures, device_table or table, dev_opts,
                                each_file=each_file)
         report["device"] = compare_device(run, dev_run, profile, fit)
-    return report
+    return shown_all(report)
 
 
 # --- command line ------------------------------------------------------------
@@ -897,6 +900,9 @@ Device profile (--profile): a TOML file with any of
 
 Exit codes: 0 done; 2 usage error or a bad signature set, labels file or
 profile (file and line named); 3 a damaged capture (rated up to the damage).
+
+File names that are not UTF-8 appear with each such byte as \\xNN (Python's
+backslashreplace form) in the tables, report.json, report.html and messages.
 
 Examples:
   seamscan rate pcaps_demo/*.pcap* --rules pcaps_demo/demo-signatures.toml \\
@@ -949,7 +955,9 @@ def add_rate_parser(subparsers):
 
 
 def _fail(message: str, code: int = EXIT_USAGE) -> int:
-    print(f"seamscan: {message}", file=sys.stderr)
+    from seamscan.filenames import shown
+
+    print(f"seamscan: {shown(message)}", file=sys.stderr)
     return code
 
 
@@ -958,6 +966,7 @@ def cmd_rate(args) -> int:
     (signature set, labels, profile), 3 a damaged capture (reported, the rest
     rated)."""
     from seamscan.compiler import CompileError
+    from seamscan.filenames import shown
     from seamscan.signatures import SignatureError, load_signatures
 
     for path in args.captures:
@@ -991,7 +1000,7 @@ def cmd_rate(args) -> int:
             written = render.write_report(report, args.report)
         except OSError as err:
             return _fail(f"{err.filename or args.report}: cannot write: {err.strerror}")
-        print("wrote " + ", ".join(written), file=sys.stderr)
+        print("wrote " + shown(", ".join(written)), file=sys.stderr)
     damaged = [c for c in report["captures"] if c["error"]]
     for c in damaged:
         print(f"seamscan: damaged capture: {c['error']}; everything before the damage was "

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import base64
 import csv
+import datetime
 import html
 import io
 import json
@@ -52,6 +53,26 @@ def clock(ts, date: bool = False) -> str:
     whole = int(ts // 1)
     text = time.strftime("%Y-%m-%d %H:%M:%S" if date else "%H:%M:%S", time.gmtime(whole))
     return f"{text}.{int((ts - whole) * 1000):03d}"
+
+
+def spans_days(first, last) -> bool:
+    """True when capture times ``first`` and ``last`` fall on different UTC days."""
+    if first is None or last is None:
+        return False
+    return time.gmtime(int(first // 1))[:3] != time.gmtime(int(last // 1))[:3]
+
+
+def time_range(first, last) -> str:
+    """``1999-11-11 21:46:16.000 .. 1999-11-13 01:13:40.277`` (UTC): the end's date
+    is left out only when it is the start's day; ``-`` for none."""
+    if first is None:
+        return "-"
+    return f"{clock(first, True)} .. {clock(last, spans_days(first, last))}"
+
+
+def _dated(report) -> bool:
+    """Whether the report's time columns need the date: its capture time spans days."""
+    return spans_days(report["set"]["first_ts"], report["set"]["last_ts"])
 
 
 def size(n: int) -> str:
@@ -121,7 +142,7 @@ def _head(r) -> list[str]:
     damaged = sum(1 for c in r["captures"] if c["error"])
     span = ""
     if s["first_ts"] is not None:
-        span = f", {clock(s['first_ts'], True)} .. {clock(s['last_ts'])} UTC"
+        span = f", {time_range(s['first_ts'], s['last_ts'])} UTC"
     lines = [f"{rules['path']}{_set_name(rules)}: {plural(rules['signatures'], 'signature')} "
              f"rated on {plural(len(r['captures']), 'capture')}"
              + (f" ({damaged} damaged)" if damaged else ""),
@@ -144,9 +165,11 @@ def _signature_table(r) -> list[str]:
         head += ["tp", "fp", "fn", "prec", "recall"]
     head.append("label")
     rows = []
+    dated = _dated(r)
     for s in r["signatures"]:
         row = [s["id"], s["matches"], s["flows"], f"{s['share']:.1%}", _sides(s),
-               f"{s['clients']}/{s['servers']}", clock(s["first_ts"]), clock(s["last_ts"])]
+               f"{s['clients']}/{s['servers']}", clock(s["first_ts"], dated),
+               clock(s["last_ts"], dated)]
         if scored:
             sc = s["scores"]
             row += [sc["tp"], sc["fp"], sc["fn"], ratio(sc["precision"], 2),
@@ -315,10 +338,11 @@ def draw_charts(report: dict) -> dict[str, tuple[str, bytes]]:
             caption = "Matches per signature" + (
                 f" (the {len(sigs)} with most matches of {len(report['signatures'])})"
                 if len(sigs) < len(report["signatures"]) else "")
+            noisy = any(s["noisy"] for s in sigs)
             charts["hits"] = (caption, _bars(plt, [s["id"] for s in sigs],
                                              [s["matches"] for s in sigs],
                                              ["#d9822b" if s["noisy"] else "#3b6ea8" for s in sigs],
-                                             "matches (orange: noisy)"))
+                                             "matches (orange: noisy)" if noisy else "matches"))
         flows = report["flows"]
         if flows:
             charts["timeline"] = ("Flows seen and flagged over capture time",
@@ -377,21 +401,53 @@ def _bars(plt, names, values, colors, xlabel) -> bytes:
     return _png(fig)
 
 
+DATE_AXIS_SECONDS = 3600  # a longer capture's timeline shows dates and times, not seconds
+
+
 def _timeline(plt, flows) -> bytes:
+    return _png(timeline_figure(plt, flows))
+
+
+def timeline_figure(plt, flows):
+    """Cumulative flows seen and flagged over capture time.  The x axis is
+    seconds after the first flow for a capture shorter than
+    ``DATE_AXIS_SECONDS``; a longer one gets UTC dates and times that
+    matplotlib's concise date formatter spaces and abbreviates (the date
+    stays on the axis, however many days)."""
+    from matplotlib import dates as mdates
+
     t0 = min(f["first_ts"] for f in flows if f["first_ts"] is not None)
-    seen = sorted(f["first_ts"] - t0 for f in flows if f["first_ts"] is not None)
-    flagged = sorted(f["first_match_ts"] - t0 for f in flows if f["first_match_ts"] is not None)
+    seen = sorted(f["first_ts"] for f in flows if f["first_ts"] is not None)
+    flagged = sorted(f["first_match_ts"] for f in flows if f["first_match_ts"] is not None)
+    long_capture = max(seen + flagged) - t0 >= DATE_AXIS_SECONDS
+    if long_capture:
+        day = 86400.0
+        epoch = mdates.date2num(datetime.datetime(1970, 1, 1, tzinfo=datetime.UTC))
+
+        def x(ts):
+            return epoch + ts / day
+    else:
+        def x(ts):
+            return ts - t0
     fig, ax = plt.subplots(figsize=(7.5, 3.0))
     for xs, label, color in ((seen, "flows seen", "#8a8a8a"),
                              (flagged, "flows flagged", "#b8413c")):
         if xs:
-            ax.step([0, *xs], [0, *range(1, len(xs) + 1)], where="post", label=label,
-                    color=color)
-    ax.set_xlabel(f"capture seconds after {clock(t0, True)} UTC")
+            ax.step([x(t0), *map(x, xs)], [0, *range(1, len(xs) + 1)], where="post",
+                    label=label, color=color)
+    if long_capture:
+        locator = mdates.AutoDateLocator(tz=datetime.UTC, minticks=3, maxticks=8)
+        ax.xaxis.set_major_locator(locator)
+        # a day tick says its month ("Nov 12", not "12"); the year is in the offset
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(
+            locator, tz=datetime.UTC, formats=["%Y", "%b", "%b %d", "%H:%M", "%H:%M", "%S.%f"]))
+        ax.set_xlabel(f"capture time (UTC), from {clock(t0, True)}")
+    else:
+        ax.set_xlabel(f"capture seconds after {clock(t0, True)} UTC")
     ax.set_ylabel("flows (cumulative)")
     ax.yaxis.get_major_locator().set_params(integer=True)
     ax.legend(loc="upper left", frameon=False)
-    return _png(fig)
+    return fig
 
 
 # --- HTML ---------------------------------------------------------------------
@@ -452,7 +508,7 @@ def render_html(report: dict, charts: dict) -> str:
            f"<p class=muted>{_e(_set_name(rules).strip(' ()') or 'unnamed set')}; "
            f"{plural(rules['signatures'], 'signature')} on "
            f"{_e(', '.join(c['path'] for c in report['captures']))}; "
-           f"capture time {_e(clock(s['first_ts'], True))} .. {_e(clock(s['last_ts'], True))} UTC"
+           f"capture time {_e(time_range(s['first_ts'], s['last_ts']))} UTC"
            "</p>"]
     cards = [("flows", s["flows"]), ("flagged", f"{s['flows_flagged']} ({s['flagged_share']:.0%})"),
              ("matches", s["matches"]), ("scanned", size(s["bytes_scanned"])),
@@ -466,14 +522,17 @@ def render_html(report: dict, charts: dict) -> str:
     for c in report["captures"]:
         if c["error"]:
             out.append(f"<p class=bad>Damaged capture: {_e(c['error'])}</p>")
+    out.append(_html_captures(report["captures"]))
     out.append("<h2>Signatures</h2>" + _figure(charts, "hits"))
     scored = report["labels"] is not None
     head = ["signature", "matches", "flows", "share", "by side", "hosts", "first seen",
             "last seen"] + (["TP", "FP", "FN", "precision", "recall"] if scored else []) + ["label"]
     rows = []
+    dated = _dated(report)
     for g in report["signatures"]:
         row = [g["id"], g["matches"], g["flows"], f"{g['share']:.1%}", _sides(g),
-               f"{g['clients']}/{g['servers']}", clock(g["first_ts"]), clock(g["last_ts"])]
+               f"{g['clients']}/{g['servers']}", clock(g["first_ts"], dated),
+               clock(g["last_ts"], dated)]
         if scored:
             sc = g["scores"]
             row += [sc["tp"], sc["fp"], sc["fn"], ratio(sc["precision"]), ratio(sc["recall"])]
@@ -501,6 +560,19 @@ def render_html(report: dict, charts: dict) -> str:
     return "\n".join(out)
 
 
+def _html_captures(captures) -> str:
+    """One row per capture file: frames, flows, matches, bytes scanned, damage."""
+    rows = [[c["path"], f"{c['frames']:,}", f"{c['flows']:,}", f"{c['matches']:,}",
+             size(c["bytes_scanned"]), _Raw(f"<span class=bad>{_e(c['error'])}</span>")
+             if c["error"] else "none"] for c in captures]
+    return ("<h2>Captures</h2>"
+            + _table(["capture", "frames", "flows", "matches", "scanned", "damage"], rows,
+                     {1, 2, 3, 4}, {5})
+            + "<p class=muted>flows: flow records of that file (a flow that ended, was "
+            "evicted or was still open at the end of the file); damage: where the file "
+            "broke, everything before it counted</p>")
+
+
 def _html_flows(report) -> str:
     """The flows with hits or labels (all of them when labelled), at most ``HTML_FLOWS``."""
     labelled = report["labels"] is not None
@@ -510,10 +582,11 @@ def _html_flows(report) -> str:
     if labelled:
         head += ["expected", "verdict"]
     rows = []
+    dated = _dated(report)
     for f in shown:
         row = [_Raw(f"{_e(flow_text(f))}<br><span class=muted>"
                     f"{_e(', '.join(os.path.basename(p) for p in f['files']))}</span>"),
-               clock(f["first_ts"]), f["matches"],
+               clock(f["first_ts"], dated), f["matches"],
                ", ".join(f"{k}×{v}" if v > 1 else k for k, v in f["signatures"].items()) or "-"]
         if labelled:
             row += [", ".join(f["expect"]) if f["expect"] else "-", VERDICT_WORDS[f["verdict"]]]
@@ -567,14 +640,16 @@ def _html_against(ab, charts) -> str:
         rows.append([what, fmt(d["old"]), fmt(d["new"]),
                      signed(d["delta"], 3 if key in ("precision", "recall") else 0)])
     parts = [f"<h2>Against {_e(ab['rules']['path'])}</h2>",
-             _table(["", "old", "new", "change"], rows, {1, 2, 3}), _figure(charts, "ab")]
+             _table(["measure", "old", "new", "change"], rows, {1, 2, 3}),
+             _figure(charts, "ab")]
     sig_rows = ([["added", a["id"], "-", a["matches"], signed(a["matches"]), ""]
                  for a in sg["added"]]
                 + [["removed", a["id"], a["matches"], "-", signed(-a["matches"]), ""]
                    for a in sg["removed"]]
                 + [["changed", c["id"], c["old_matches"], c["new_matches"], signed(c["delta"]),
                     "yes" if c["redefined"] else ""] for c in sg["changed"]])
-    parts.append(_table(["", "signature", "old matches", "new matches", "change", "redefined"],
+    parts.append(_table(["what", "signature", "old matches", "new matches", "change",
+                         "redefined"],
                         sig_rows, {2, 3, 4}) if sig_rows
                  else "<p class=muted>No signature changed its hits.</p>")
     parts.append(f"<p>{len(sg['unchanged'])} unchanged" + (
@@ -582,7 +657,7 @@ def _html_against(ab, charts) -> str:
     flow_rows = ([[flow_text(i), "gained", ", ".join(i["signatures"])] for i in ab["flows"]["gained"]]
                  + [[flow_text(i), "lost", ", ".join(i["signatures"])] for i in ab["flows"]["lost"]])
     if flow_rows:
-        parts.append(_table(["flow", "", "signatures"], flow_rows))
+        parts.append(_table(["flow", "gained or lost", "signatures"], flow_rows))
     return "\n".join(parts)
 
 
@@ -595,7 +670,7 @@ def _html_device(dev, charts) -> str:
                     [[f"{p['max_flows']:,}", f"{p['hold_bytes']:,}", p["layout"],
                       "-" if p["budget"] is None else f"{p['budget']:,}"]]),
              f"<p>Table {fit}: {_e(t['message'])}</p>",
-             _table(["", "host", "device"],
+             _table(["measure", "host", "device"],
                     [["flows", fl["host"], fl["device"]], ["evictions", 0, fl["evicted"]],
                      ["picked up with roles swapped", "-", fl["swapped"]],
                      ["gaps", g["host"], g["device"]],
@@ -609,7 +684,8 @@ def _html_device(dev, charts) -> str:
             + [["extra", i["signature"], flow_text(i), i["host"], i["device"]]
                for i in dev["extra"]["by_flow"]])
     if rows:
-        parts.append(_table(["", "signature", "flow", "host", "device"], rows, {3, 4}))
+        parts.append(_table(["missed or extra", "signature", "flow", "host matches",
+                             "device matches"], rows, {3, 4}))
     if fl["evicted_flows"]:
         parts.append("<h3>Evicted flows</h3>" + _table(
             ["flow", "times"], [[flow_text(i), i["times"]] for i in fl["evicted_flows"]], {1}))
