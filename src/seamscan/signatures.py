@@ -719,7 +719,7 @@ def _parse_set(token: str, where: str, fold_case: bool) -> frozenset[int]:
         raise ValueError(f"{where}: the set is empty, so it matches no byte")
     if raw == ALL_BYTES:
         raise ValueError(f"{where}: the set holds every byte; write ?? for any byte")
-    folded = _fold(frozenset(members))
+    folded = _fold(frozenset(members)) if fold_case else frozenset(members)
     result = ALL_BYTES - folded if negate else folded
     if not result:
         raise ValueError(f"{where}: with fold_case the set matches no byte")

@@ -1,0 +1,222 @@
+"""Byte sets, ``??`` and multi-part signatures against Python's ``re``.
+
+Random signature sets mix literals, byte sets, ``??``, fold_case (at the
+signature and per part) and 1-4 parts with random spacings; haystacks are
+spliced from pieces of the parts (case flipped at times) and random bytes
+from the whole 0-255 range.  Every result is compared with the brute force
+of ``re_oracle`` (Python's ``re``: the contract's own definition), for the
+Python reference, both layouts of the C runtime, ``Stream.feed`` at random
+splits and the batch scanner with interleaved slots.
+"""
+
+from __future__ import annotations
+
+import random
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import re_oracle
+from seamscan import engine
+from seamscan.reference import reference_matches
+from seamscan.signatures import SignatureError, signature_set
+from vectors import LAYOUTS
+
+SETTINGS = settings(max_examples=200, deadline=None,
+                    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+HOT = b"aAbB0\x00\xff\n"  # bytes the tokens below favour, so that matches happen
+
+
+def _byte(draw) -> int:
+    if draw(st.integers(0, 3)):
+        return draw(st.sampled_from(HOT))
+    return draw(st.integers(0, 255))
+
+
+@st.composite
+def hex_tokens(draw) -> tuple[str, list[int]]:
+    """(hex text, one example byte per token) with pairs, ?? and sets."""
+    tokens, example = [], []
+    for _ in range(draw(st.integers(1, 4))):
+        kind = draw(st.sampled_from(["pair", "pair", "any", "set"]))
+        if kind == "pair":
+            b = _byte(draw)
+            tokens.append(f"{b:02x}")
+            example.append(b)
+        elif kind == "any":
+            tokens.append("??")
+            example.append(_byte(draw))
+        else:
+            items, members = [], set()
+            for _ in range(draw(st.integers(1, 3))):
+                lo = _byte(draw)
+                if draw(st.booleans()):
+                    hi = min(255, lo + draw(st.integers(0, 40)))
+                    items.append(f"{lo:02x}-{hi:02x}")
+                    members.update(range(lo, hi + 1))
+                else:
+                    items.append(f"{lo:02x}")
+                    members.add(lo)
+            neg = draw(st.booleans())
+            chosen = set(range(256)) - members if neg else members
+            if not chosen or len(chosen) == 256:
+                tokens.append("??")
+                example.append(_byte(draw))
+                continue
+            tokens.append("<" + ("!" if neg else "") + " ".join(items) + ">")
+            example.append(draw(st.sampled_from(sorted(chosen))))
+    return " ".join(tokens), example
+
+
+@st.composite
+def parts(draw) -> tuple[dict, bytes]:
+    if draw(st.booleans()):
+        text = draw(st.text(alphabet="aAbB0\n", min_size=1, max_size=4))
+        return {"text": text}, text.encode()
+    text, example = draw(hex_tokens())
+    return {"hex": text}, bytes(example)
+
+
+@st.composite
+def cases(draw, windows: bool = True):
+    sigs, pieces = [], []
+    for k in range(draw(st.integers(1, 5))):
+        sig: dict = {"id": f"s{k}", "fold_case": draw(st.booleans())}
+        nparts = draw(st.sampled_from([1, 1, 2, 2, 3, 4]))
+        drawn = [draw(parts()) for _ in range(nparts)]
+        if nparts == 1:
+            sig.update(drawn[0][0])
+        else:
+            tables = []
+            for j, (table, _ex) in enumerate(drawn):
+                table = dict(table)
+                if j and draw(st.integers(0, 3)):
+                    low = draw(st.integers(0, 4))
+                    high = draw(st.one_of(st.just("any"), st.integers(low, low + 6)))
+                    table["spacing"] = [low, high]
+                if draw(st.integers(0, 4)) == 0:
+                    table["fold_case"] = draw(st.booleans())
+                tables.append(table)
+            sig["part"] = tables
+        if windows and draw(st.integers(0, 4)) == 0:
+            start = draw(st.integers(0, 20))
+            sig["window"] = [start, start + draw(st.integers(30, 60))]
+        sigs.append(sig)
+        pieces.extend(ex for _t, ex in drawn)
+    piece = st.one_of(
+        st.binary(max_size=3),
+        st.lists(st.sampled_from(HOT), max_size=3).map(bytes),
+        st.tuples(st.sampled_from(pieces), st.booleans()).map(
+            lambda pf: pf[0].swapcase() if pf[1] else pf[0]),
+    )
+    haystack = b"".join(draw(st.lists(piece, max_size=16)))[:80]
+    return sigs, haystack
+
+
+def _sigset(sigs):
+    try:
+        return signature_set(sigs)
+    except SignatureError as err:  # a drawn set the format refuses: say which
+        raise AssertionError(f"drawn signatures refused: {err}") from None
+
+
+def _named(sigset, found):
+    ids = sigset.ids
+    return [(ids[i], s, e) for i, s, e in found]
+
+
+def _triples(matches):
+    return [(m.sig, m.start, m.end) for m in matches]
+
+
+@SETTINGS
+@given(cases())
+def test_reference_equals_re(case):
+    sigs, haystack = case
+    sigset = _sigset(sigs)
+    assert _named(sigset, reference_matches(sigset, haystack)) == re_oracle.matches(sigs, haystack)
+
+
+@SETTINGS
+@given(cases(), st.randoms(use_true_random=False))
+def test_c_runtime_equals_re_every_layout_and_split(case, rnd):
+    sigs, haystack = case
+    sigset = _sigset(sigs)
+    expected = re_oracle.matches(sigs, haystack)
+    _automaton, tables = engine.compile_layouts(sigset)
+    for layout in LAYOUTS:
+        table = tables[layout]
+        assert _triples(table.scan(haystack)) == expected, layout
+        stream = table.stream()
+        got, pos = [], 0
+        while pos < len(haystack):
+            step = rnd.randint(1, 9)
+            got += stream.feed(haystack[pos:pos + step])
+            pos += step
+        assert _triples(got) == expected, layout
+
+
+@SETTINGS
+@given(st.lists(cases(windows=False), min_size=1, max_size=4), st.randoms(use_true_random=False))
+def test_batch_slots_interleaved_equal_re(cases_, rnd):
+    # One table for every case's signatures together (ids made unique);
+    # each haystack is one slot, cut into chunks and interleaved with the
+    # other slots' chunks in one batch, as a replay does.
+    sigs = [dict(s, id=f"c{k}-{s['id']}") for k, (case_sigs, _h) in enumerate(cases_)
+            for s in case_sigs]
+    sigset = _sigset(sigs)
+    table = engine.compile(sigset, rnd.choice(LAYOUTS))
+    scanner = engine.BatchScanner(table, len(cases_))
+    queues = []
+    for slot, (_s, haystack) in enumerate(cases_):
+        cuts = sorted(rnd.sample(range(1, len(haystack)), min(3, max(0, len(haystack) - 1))))
+        bounds = [0, *cuts, len(haystack)]
+        queues.append([(slot, haystack[a:b]) for a, b in zip(bounds, bounds[1:], strict=False)])
+    items = []
+    while any(queues):
+        q = rnd.choice([q for q in queues if q])
+        slot, chunk = q.pop(0)
+        items.append((slot, engine.ITEM_RESET if not any(i[0] == slot for i in items) else 0,
+                      0, 0, chunk, 0))
+    found = scanner.scan(items)
+    per_slot = {slot: [] for slot in range(len(cases_))}
+    for item, sig, start, end in found:
+        per_slot[items[item][0]].append((table.ids[sig], start, end))
+    for slot, (_s, haystack) in enumerate(cases_):
+        want = re_oracle.matches(sigs, haystack)
+        assert sorted(per_slot[slot], key=lambda m: (m[2], sigset.index(m[0]))) == want
+
+
+def test_chain_never_spans_a_reset():
+    # A gap (ss_reset and ss_track_reset) between two parts: no match.
+    sigset = signature_set([{"id": "p", "part": [{"text": "AB"}, {"text": "CD"}]}])
+    for layout in LAYOUTS:
+        stream = engine.compile(sigset, layout).stream()
+        assert stream.feed(b"xxAB") == []
+        stream.reset(10)
+        assert stream.feed(b"CD") == []
+        assert _triples(stream.feed(b"ABCD")) == [("p", 12, 16)]
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_long_stream_many_chains(seed):
+    # Chains over a few thousand bytes of dense hot bytes, fed in random
+    # pieces: the rings never overflow (capacities from tracker.py).
+    rnd = random.Random(seed)
+    sigs = [
+        {"id": "w", "part": [{"hex": "61 ??"}, {"hex": "<30-39> 62", "spacing": [3, 9]},
+                             {"text": "a", "spacing": [0, "any"]}]},
+        {"id": "v", "fold_case": True, "part": [{"text": "a"}, {"text": "aa", "spacing": [0, 2]}]},
+        {"id": "u", "part": [{"hex": "??"}, {"hex": "??", "spacing": [4, 4]}]},
+    ]
+    data = bytes(rnd.choice(b"aA0b5") for _ in range(600))
+    expected = re_oracle.matches(sigs, data)
+    for layout in LAYOUTS:
+        stream = engine.compile(signature_set(sigs), layout).stream()
+        got, pos = [], 0
+        while pos < len(data):
+            step = rnd.randint(1, 40)
+            got += stream.feed(data[pos:pos + step])
+            pos += step
+        assert _triples(got) == expected, layout
