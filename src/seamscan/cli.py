@@ -358,6 +358,7 @@ def layout_report(tables: dict, budget=None, sample=None) -> str:
         lines.append(row)
     lines.append("  (per state: the image less signature records, ports and names, over the "
                  "states; steps: state visits per byte)")
+    lines.append(flow_side_memory(next(iter(tables.values()))))
     for name, table in tables.items():
         lines.append(f"  {name} sections:")
         lines.extend(_sections(table))
@@ -394,6 +395,16 @@ def cmd_inspect(args) -> int:
     print(f"  {len(table)} signatures, longest {h.max_len} bytes, at most {h.max_outputs} "
           f"outputs per state; {automaton_bytes(table) / table.states:.2f} automaton bytes "
           "per state")
+    print(flow_side_memory(table))
     print("  sections:")
     print("\n".join(_sections(table)))
     return EXIT_OK
+
+
+def flow_side_memory(table) -> str:
+    """The RAM a flow side needs: the 16-byte state, plus the part tracker's bytes."""
+    track = table.track_bytes
+    if not track:
+        return "  per flow side: 16 bytes of state (no multi-part signatures)"
+    return (f"  per flow side: 16 bytes of state + {track:,} bytes of part tracker "
+            f"(ss_track_bytes; {table.header.nparts} parts)")

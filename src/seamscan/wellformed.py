@@ -324,6 +324,9 @@ def _parts(blob: bytes, h: image.Header) -> list[str]:
             slot += tracker.link_bytes(cap)
         expect_sig, expect_index = (sig + 1, 0) if last else (sig, index + 1)
     else:
+        longest = max((r[3] for r in records), default=0)
+        if longest != h.max_len:
+            out.append(f"max_len {h.max_len} is not the longest part, {longest} bytes")
         if expect_sig != h.sigs or expect_index:
             out.append(f"the part records cover {expect_sig} of {h.sigs} signatures")
         if slot != h.track_bytes:
