@@ -220,3 +220,119 @@ def test_long_stream_many_chains(seed):
             got += stream.feed(data[pos:pos + step])
             pos += step
         assert _triples(got) == expected, layout
+
+
+# --- bad input: file, line, id, part and token in every message ----------------
+
+BAD = [
+    ('hex = "a5 <39-30>"', "token '<39-30>' at character 4: the range '39-30' is reversed"),
+    ('hex = "a5 <>"', "token '<>' at character 4: the set is empty"),
+    ('hex = "<!>"', "token '<!>' at character 1: the set holds every byte"),
+    ('hex = "<00-ff>"', "token '<00-ff>' at character 1: the set holds every byte"),
+    ('hex = "<0d 0a"', "token '<0d' at character 1: a byte set '<' is not closed"),
+    ('hex = "0d >"', "token '>' at character 4"),
+    ('hex = "a5 ?"', "token '?' at character 4: '?' only comes as '??'"),
+    ('hex = "a5 ???"', "token '???' at character 4"),
+    ('hex = "a5 <0g>"', "token '<0g>' at character 4: '0g' is neither a byte pair"),
+    ('hex = "a5 <30--39>"', "token '<30--39>' at character 4"),
+    ('hex = "a5 <30  39>"', "token '<30  39>' at character 4: items of a set are separated by single"),
+    # plain byte pairs keep the messages they always had (tests/test_signatures.py)
+    ('hex = "a5 5"', "odd number of hex digits (3)"),
+    ('hex = "a5 zz"', "'z' at character 4 is not a hex digit"),
+    ('hex = "?? 5"', "token '5' at character 4: odd number of hex digits"),
+    ('hex = "?? zz"', "token 'zz' at character 4: 'z' is not a hex digit"),
+]
+
+
+@pytest.mark.parametrize("line, message", BAD, ids=[b[0] for b in BAD])
+def test_bad_tokens_name_file_line_id_part_and_token(line, message):
+    from seamscan.signatures import loads_signatures
+
+    text = ('[[signature]]\nid = "ok"\ntext = "fine"\n\n[[signature]]\nid = "lab-7"\n'
+            '[[signature.part]]\ntext = "A"\n[[signature.part]]\n' + line + "\n")
+    with pytest.raises(SignatureError) as err:
+        loads_signatures(text, "lab.toml")
+    shown = str(err.value)
+    assert shown.startswith("lab.toml:5: signature 'lab-7' (#2): part 2: field 'hex': "), shown
+    assert message in shown, shown
+
+
+BAD_SPACING = [
+    ("[0]", "expected [MIN, MAX] with MAX an integer or \"any\""),
+    ("[3, 1]", "MAX 1 is less than MIN 3"),
+    ("[-1, 4]", "MIN -1 is out of range 0..65535"),
+    ("[0, 65536]", "MAX 65536 is out of range"),
+    ('[0, "all"]', "expected [MIN, MAX]"),
+    ("[1.5, 3]", "expected [MIN, MAX]"),
+]
+
+
+@pytest.mark.parametrize("value, message", BAD_SPACING, ids=[b[0] for b in BAD_SPACING])
+def test_bad_spacing(value, message):
+    from seamscan.signatures import loads_signatures
+
+    text = ('[[signature]]\nid = "lab-8"\n[[signature.part]]\ntext = "A"\n'
+            f"[[signature.part]]\ntext = \"B\"\nspacing = {value}\n")
+    with pytest.raises(SignatureError) as err:
+        loads_signatures(text, "lab.toml")
+    shown = str(err.value)
+    assert shown.startswith("lab.toml:1: signature 'lab-8' (#1): part 2: field 'spacing': "), shown
+    assert message in shown, shown
+
+
+@pytest.mark.parametrize("entry, message", [
+    ({"id": "x", "text": "A", "part": [{"text": "B"}]}, "give either parts or one pattern"),
+    ({"id": "x", "part": []}, "expected [[signature.part]] tables"),
+    ({"id": "x", "part": [{"text": "A", "spacing": [0, 2]}]}, "the first part has no spacing"),
+    ({"id": "x", "part": [{"text": "A", "hex": "41"}]}, "both given"),
+    ({"id": "x", "part": [{"fold_case": True}]}, "missing; give exactly one"),
+    ({"id": "x", "part": [{"text": "A", "gap": 1}]}, "unknown field"),
+    ({"id": "x", "part": [{"text": "A"}] * 17}, "17 parts; the limit is 16"),
+    ({"id": "x", "part": [{"hex": "??"}, {"hex": "??", "spacing": [300, 300]}]},
+     "the part tracker would need"),
+    ({"id": "x", "window": [0, 5], "part": [{"text": "AB"}, {"text": "CD", "spacing": [2, 4]}]},
+     "fewer than the 6-byte pattern"),
+])
+def test_bad_parts(entry, message):
+    with pytest.raises(SignatureError) as err:
+        signature_set([entry])
+    assert message in str(err.value), str(err.value)
+
+
+def test_readable_patterns():
+    sigset = signature_set([
+        {"id": "a", "text": "GET /"},
+        {"id": "b", "hex": "a5 5a ?? <30-39> <!0d 0a>"},
+        {"id": "c", "fold_case": True,
+         "part": [{"hex": "a5 5a"}, {"text": "FORCE", "spacing": [0, 40]},
+                  {"text": "COMMIT", "fold_case": False}]},
+    ])
+    assert [s.readable() for s in sigset] == [
+        '"GET /"',
+        "hex a5 5a ?? <30-39> <!0d 0a>",
+        'hex a5 5a (fold_case) [0,40] "FORCE"i [0,any] "COMMIT"',
+    ]
+
+
+def test_image_versions(tmp_path):
+    # A set without multi-part signatures is written as version 1 (byte sets
+    # included), and the runtime reads it; a set with parts is version 2 and
+    # says what its flow sides need.  A runtime built without the tracker
+    # (SS_NO_PARTS) refuses version 2 with SS_ERR_VERSION (-3) and reads 1.
+    import subprocess
+
+    plain = engine.compile(signature_set([{"id": "a", "hex": "41 ?? <30-39>"}]))
+    parts = engine.compile(signature_set([{"id": "p", "part": [{"text": "AB"}, {"text": "CD"}]}]))
+    assert (plain.header.version, plain.track_bytes) == (1, 0)
+    # link after "AB": D = 0 + len("CD") = 2, self-overlap of AB is 2, so
+    # floor((2 - 1) / 2) + 1 = 1 waiting chain: 24 + 16 bytes
+    assert parts.header.version == 2 and parts.track_bytes == 24 + 16 * 1
+    root = __import__("pathlib").Path(__file__).resolve().parent.parent
+    r = subprocess.run(["make", "-s", "-C", str(root / "csrc"), f"OUT={tmp_path}",
+                        "DEFS=-DSS_NO_PARTS", "seamrun"], capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    (tmp_path / "1.seam").write_bytes(plain.to_bytes())
+    (tmp_path / "2.seam").write_bytes(parts.to_bytes())
+    r = subprocess.run([str(tmp_path / "seamrun"), "--check", str(tmp_path / "1.seam"),
+                        str(tmp_path / "2.seam")], capture_output=True, text=True)
+    assert r.stdout.split("\n")[:2] == [f"0 {tmp_path / '1.seam'}", f"-3 {tmp_path / '2.seam'}"]
