@@ -253,9 +253,12 @@ static void begin(const ss_table *t, ss_state *states, uint8_t *track, const ss_
 {
     ss_state *st = &states[it->slot];
 #ifndef SS_NO_PARTS
-    ln->track = track ? track + (size_t)it->slot * ss_track_bytes(t) : NULL;
-    if ((it->flags & SS_ITEM_RESET) && it->done == 0 && track)
-        ss_track_reset(t, ln->track);
+    ln->track = NULL;
+    if (track) {
+        ln->track = track + (size_t)it->slot * t->track_bytes;
+        if ((it->flags & SS_ITEM_RESET) && it->done == 0)
+            memset(ln->track, 0, t->track_bytes);
+    }
 #else
     (void)track;
 #endif

@@ -315,6 +315,7 @@ class BatchScanner:
         self.states = ffi.new("ss_state[]", max(1, slots))
         self._track_bytes = table.track_bytes
         self.track = ffi.new("uint64_t[]", max(1, slots * self._track_bytes // 8))
+        self._track_arg = self.track if self._track_bytes else ffi.NULL
         self._out = ffi.new("ss_match[]", table._cap)
         self._nout = ffi.new("size_t *")
         self._items = bytearray()
@@ -357,7 +358,7 @@ class BatchScanner:
         found: list[tuple[int, int, int, int]] = []
         start = 0
         while True:
-            done = lib.ss_scan_batch_parts(t._t, self.states, self.track, items + start,
+            done = lib.ss_scan_batch_parts(t._t, self.states, self._track_arg, items + start,
                                            n - start, buf, self._out, t._cap, self._nout)
             k = self._nout[0]
             if k:
