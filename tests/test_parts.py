@@ -336,3 +336,17 @@ def test_image_versions(tmp_path):
     r = subprocess.run([str(tmp_path / "seamrun"), "--check", str(tmp_path / "1.seam"),
                         str(tmp_path / "2.seam")], capture_output=True, text=True)
     assert r.stdout.split("\n")[:2] == [f"0 {tmp_path / '1.seam'}", f"-3 {tmp_path / '2.seam'}"]
+
+
+def test_rate_report_shows_each_pattern():
+    # report.json's signatures carry the readable pattern; the CSV has it as
+    # its last column.
+    from seamscan import evaluate, report
+
+    sigset = signature_set([
+        {"id": "t", "text": "GET /"},
+        {"id": "p", "part": [{"hex": "a5 ??"}, {"text": "OK", "spacing": [0, 4]}]},
+    ])
+    stats = evaluate.signature_stats(evaluate.Run(), sigset)
+    assert [s["pattern"] for s in stats] == ['"GET /"', 'hex a5 ?? [0,4] "OK"']
+    assert report.CSV_COLUMNS[-1] == "pattern"

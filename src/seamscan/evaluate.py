@@ -82,11 +82,13 @@ report.json (also what ``--format json`` prints) is one object:
   set                {flows, connections, flows_flagged, flagged_share,
                       bytes_scanned, matches, frames, gaps, first_ts,
                       last_ts, signatures, fired, never_fired, noisy}
-  signatures         [{id, label, tags, matches, flows, share, clients,
+  signatures         [{id, label, pattern, tags, matches, flows, share, clients,
                        servers, first_ts, last_ts,
                        sides: {client: {matches, flows}, server: {...}},
                        noisy, scores}]   in set order; scores: null without
-                     labels, else {tp, fp, fn, unlabelled, precision, recall}
+                     labels, else {tp, fp, fn, unlabelled, precision, recall};
+                     pattern: the signature as a person reads it ("text",
+                     hex with ?? and <sets>, parts joined by [MIN,MAX])
   never_fired        [id]
   noisy              [id]
   flows              [{transport, client_ip, client_port, server_ip,
@@ -566,7 +568,8 @@ def signature_stats(run: Run, sigset, noisy_share: float = NOISY_SHARE) -> list[
         s = run.sigs.get(sig.id) or _Sig()
         share = len(s.flows) / nflows if nflows else 0.0
         out.append({
-            "id": sig.id, "label": sig.label, "tags": list(sig.tags), "matches": s.matches,
+            "id": sig.id, "label": sig.label, "pattern": sig.readable(), "tags": list(sig.tags),
+            "matches": s.matches,
             "flows": len(s.flows), "share": share, "clients": len(s.clients),
             "servers": len(s.servers), "first_ts": _finite(s.first_ts),
             "last_ts": _finite(s.last_ts),

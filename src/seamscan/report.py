@@ -21,7 +21,7 @@ import time
 CSV_COLUMNS = ("id", "label", "tags", "matches", "flows", "share", "clients", "servers",
                "first_ts", "last_ts", "client_matches", "server_matches", "noisy", "tp", "fp",
                "fn", "unlabelled", "precision", "recall", "old_matches", "delta",
-               "device_missed")
+               "device_missed", "pattern")
 LIST_LIMIT = 20  # terminal: list items shown before "... and N more"
 CHART_SIGNATURES = 40  # most signatures one bar chart shows
 HTML_FLOWS = 500  # most flows the page lists
@@ -277,7 +277,7 @@ def signature_rows(report: dict) -> list[list]:
                      s["sides"]["server"]["matches"], int(s["noisy"]), _cell(sc.get("tp")),
                      _cell(sc.get("fp")), _cell(sc.get("fn")), _cell(sc.get("unlabelled")),
                      _cell(sc.get("precision")), _cell(sc.get("recall")), *ab_cells,
-                     "" if missed is None else missed.get(s["id"], 0)])
+                     "" if missed is None else missed.get(s["id"], 0), s.get("pattern", "")])
     return rows
 
 
@@ -479,11 +479,14 @@ def render_html(report: dict, charts: dict) -> str:
             row += [sc["tp"], sc["fp"], sc["fn"], ratio(sc["precision"]), ratio(sc["recall"])]
         label = g["label"] + (" (noisy)" if g["noisy"] else "")
         rows.append(row + [_Raw(_e(label) + (f' <span class=muted>{_e(", ".join(g["tags"]))}'
-                                             "</span>" if g["tags"] else ""))])
+                                             "</span>" if g["tags"] else "")
+                                + (f'<br><code>{_e(g["pattern"])}</code>'
+                                   if g.get("pattern") else ""))])
     out.append(_table(head, rows, set(range(1, 6)) | (set(range(8, 13)) if scored else set()),
                       {len(head) - 1}))
     out.append("<p class=muted>by side: matches in the bytes clients / servers sent; hosts: "
-               "distinct client / server addresses; label, then tags; times UTC</p>")
+               "distinct client / server addresses; label, then tags, then the pattern; "
+               "times UTC</p>")
     share = report["options"]["noisy_share"]
     out.append(f"<p><b>Never fired</b> ({len(report['never_fired'])}): "
                f"{_e(_ids(report['never_fired']))}<br><b>Noisy</b>, hit in more than "
