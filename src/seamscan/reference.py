@@ -100,7 +100,7 @@ def _regex_matches(sig: Signature, data: bytes, low: int, high: int):
     longest = None
     if all(p.high is not None for p in parts):
         longest = sum(len(p) + p.high for p in parts)
-    for e in range(low + shortest, high + 1):
+    for e in range(low + shortest, min(high, len(data)) + 1):
         first = low if longest is None else max(low, e - longest)
         for s in range(e - shortest, first - 1, -1):
             if pattern.fullmatch(data, s, e):
