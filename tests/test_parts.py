@@ -12,6 +12,9 @@ splits and the batch scanner with interleaved slots.
 from __future__ import annotations
 
 import random
+import sys
+from functools import partial
+from pathlib import Path
 
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -350,3 +353,44 @@ def test_rate_report_shows_each_pattern():
     stats = evaluate.signature_stats(evaluate.Run(), sigset)
     assert [s["pattern"] for s in stats] == ['"GET /"', 'hex a5 ?? [0,4] "OK"']
     assert report.CSV_COLUMNS[-1] == "pattern"
+
+
+def test_compile_and_inspect_print_the_tracker_and_costly_states(tmp_path):
+    import os
+    import subprocess
+
+    rules = tmp_path / "set.toml"
+    rules.write_text('[[signature]]\nid = "ty-0102"\nfold_case = true\n'
+                     '[[signature.part]]\nhex = "a5 5a ?? 06"\n'
+                     '[[signature.part]]\ntext = "FORCE"\nspacing = [0, 40]\n'
+                     '[[signature]]\nid = "plain"\ntext = "GET /"\n')
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent / "src"))
+    run = partial(subprocess.run, capture_output=True, text=True, env=env)
+    out = run([sys.executable, "-m", "seamscan", "compile", str(rules), "-o",
+               str(tmp_path / "t.seam"), "--no-speed"])
+    assert out.returncode == 0, out.stderr
+    # link after "a5 5a ?? 06" (no self-overlap: shift 4), D = 0 + 5: 2 chains, 24 + 32 bytes
+    assert "per flow side: 16 bytes of state + 56 bytes of part tracker" in out.stdout
+    assert "states only one signature needs (the costliest): ty-0102 " in out.stdout
+    out = run([sys.executable, "-m", "seamscan", "inspect", str(tmp_path / "t.seam")])
+    assert out.returncode == 0, out.stderr
+    assert "format version 2" in out.stdout and "56 bytes of part tracker" in out.stdout
+
+
+@SETTINGS
+@given(cases(), st.randoms(use_true_random=False))
+def test_datagrams_confine_every_occurrence(case, rnd):
+    # Datagram scope (the default): an occurrence lies in one datagram and
+    # its window counts from the datagram's first byte, so the matches are
+    # the oracle's on each datagram alone, shifted by where it starts.
+    sigs, haystack = case
+    sigset = _sigset(sigs)
+    cuts = sorted(rnd.sample(range(1, len(haystack)), min(4, max(0, len(haystack) - 1))))
+    bounds = [0, *cuts, len(haystack)]
+    expected = [(sid, s + a, e + a) for a, b in zip(bounds, bounds[1:], strict=False)
+                for sid, s, e in re_oracle.matches(sigs, haystack[a:b])]
+    for layout in LAYOUTS:
+        stream = engine.compile(sigset, layout).stream(transport="udp", datagram=True)
+        got = [m for a, b in zip(bounds, bounds[1:], strict=False)
+               for m in stream.feed(haystack[a:b])]
+        assert _triples(got) == expected, layout

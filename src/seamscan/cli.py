@@ -302,6 +302,11 @@ def cmd_compile(args) -> int:
     print(f"{args.rules}: {len(sigset)} signatures, {automaton.states:,} states, "
           f"{automaton.nclasses} byte classes, compiled in {elapsed:.2f} s")
     print(layout_report(tables, args.budget, sample))
+    if any(not sig.is_literal for sig in sigset):  # byte sets, ?? and parts can cost states
+        sizes = {n: t.nbytes for n, t in tables.items()}
+        worst = engine.costliest_signatures(automaton, list(sigset), sizes)[:5]
+        print("  states only one signature needs (the costliest): "
+              + ", ".join(f"{sid} {states:,}" for sid, states, _saved in worst))
     fits = [n for n in engine.AUTO_ORDER
             if args.budget is None or tables[n].nbytes <= args.budget]
     chosen = args.layout if args.layout != "auto" else (fits[0] if fits else None)
