@@ -99,3 +99,40 @@ def test_no_chain_spans_a_gap(tmp_path):
     assert _hits(result) == want
     # without the gap the first chain would have matched
     assert re_oracle.matches(SIGS[:1], before + after)[0] == ("force-commit", 0, len(before) + 6)
+
+
+def test_rate_counts_parts_and_near_misses(tmp_path):
+    # Each part's occurrences, the chains that reached it and those that got
+    # no further, from a capture; the expected counts are the oracle's on
+    # the client stream (Python's re), probe by probe.
+    from seamscan import evaluate, report
+
+    sigs = [{"id": "three", "part": [{"text": "AB"}, {"text": "CD", "spacing": [0, 3]},
+                                     {"hex": "45 <30-39>", "spacing": [0, "any"]}]},
+            {"id": "plain", "text": "CD"}]
+    stream = b"AB xx CD AB CD E1 AB CD ABCD E AB"
+    c = Conversation()
+    c.handshake()
+    c.send("client", stream, segments=4)
+    c.close()
+    path = tmp_path / "rate.pcap"
+    craft.write_pcap(path, c.packets)
+    rep = evaluate.rate([path], seamscan.signature_set(sigs))
+    (three, plain) = rep["signatures"]
+    assert plain["parts"] is None
+    count = lambda *s: len(re_oracle.matches(list(s), stream))  # noqa: E731
+    ab, cd, e = ({"id": "x", "text": "AB"}, {"id": "x", "text": "CD"},
+                 {"id": "x", "hex": "45 <30-39>"})
+    to_cd = {"id": "x", "part": sigs[0]["part"][:2]}
+    want_reached = [count(ab), count(to_cd), count(sigs[0])]
+    assert [p["occurred"] for p in three["parts"]] == [count(ab), count(cd), count(e)]
+    assert [p["reached"] for p in three["parts"]] == want_reached
+    assert [p["near_misses"] for p in three["parts"]] == [
+        want_reached[0] - want_reached[1], want_reached[1] - want_reached[2], 0]
+    assert want_reached == [5, 3, 1] and three["matches"] == 1
+    assert [p["pattern"] for p in three["parts"]] == ['"AB"', '"CD"', "hex 45 <30-39>"]
+    text = report.format_tables(rep)
+    assert "multi-part signatures:" in text and "near misses" in text
+    page = report.render_html(rep, {})
+    assert "<h3>Multi-part signatures</h3>" in page and "hex 45 &lt;30-39&gt;" in page
+    assert '"near_misses": 2' in report.to_json(rep)

@@ -88,7 +88,13 @@ report.json (also what ``--format json`` prints) is one object:
                        noisy, scores}]   in set order; scores: null without
                      labels, else {tp, fp, fn, unlabelled, precision, recall};
                      pattern: the signature as a person reads it ("text",
-                     hex with ?? and <sets>, parts joined by [MIN,MAX])
+                     hex with ?? and <sets>, parts joined by [MIN,MAX]);
+                     parts: null, or per part of a multi-part signature
+                     {pattern, occurred, reached, near_misses}: matches of
+                     the part alone, of the parts up to it (chains that got
+                     there, counted per end offset), and reached minus the
+                     next part's reached (chains that got no further; 0 for
+                     the last part); counted by a second replay
   never_fired        [id]
   noisy              [id]
   flows              [{transport, client_ip, client_port, server_ip,
@@ -579,6 +585,71 @@ def signature_stats(run: Run, sigset, noisy_share: float = NOISY_SHARE) -> list[
     return out
 
 
+def part_probes(sigset) -> list[tuple[int, str, int, dict]]:
+    """For each multi-part signature: (signature index, kind, part number,
+    probe signature): ``occurred`` probes are one part alone, ``reached``
+    probes the parts up to it (for part 2 and on; the last one is the
+    signature itself), each with the signature's side, transport, ports and
+    scope and no window.  Probe ids cannot clash with a set's ids."""
+    probes = []
+    for index, sig in enumerate(sigset):
+        parts = sig.pattern_parts()
+        if len(parts) < 2:
+            continue
+        common = {"side": sig.side, "transport": sig.transport}
+        if sig.ports is not None:
+            common["ports"] = list(sig.ports)
+        if sig.transport != "tcp":
+            common["scope"] = sig.scope
+
+        def table(part, k):
+            entry = {part.field: part.source, "fold_case": part.fold_case}
+            if k:
+                entry["spacing"] = [part.low, "any" if part.high is None else part.high]
+            return entry
+
+        for k, part in enumerate(parts):
+            probes.append((index, "occurred", k, {"id": f"\0{index}/o/{k}", **common,
+                                                  part.field: part.source,
+                                                  "fold_case": part.fold_case}))
+            if 0 < k < len(parts) - 1:
+                probes.append((index, "reached", k, {
+                    "id": f"\0{index}/r/{k}", **common,
+                    "part": [table(p, j) for j, p in enumerate(parts[:k + 1])]}))
+    return probes
+
+
+def add_part_stats(sigs: list[dict], sigset, captures, options) -> None:
+    """Fill ``parts`` of each multi-part signature's stats (see ``REPORT_SCHEMA``):
+    one more replay, of the probes of :func:`part_probes`, when the set has any."""
+    for s in sigs:
+        s["parts"] = None
+    probes = part_probes(sigset)
+    if not probes:
+        return
+    from seamscan import engine
+    from seamscan.signatures import signature_set
+
+    run = run_captures(captures, engine.compile(signature_set([p for *_x, p in probes])),
+                       options)
+    found = {p["id"]: (run.sigs[p["id"]].matches if p["id"] in run.sigs else 0)
+             for *_x, p in probes}
+    for index, sig in enumerate(sigset):
+        parts = sig.pattern_parts()
+        if len(parts) < 2:
+            continue
+        rows = []
+        for k, part in enumerate(parts):
+            reached = (found[f"\0{index}/o/0"] if k == 0 else sigs[index]["matches"]
+                       if k == len(parts) - 1 else found[f"\0{index}/r/{k}"])
+            rows.append({"pattern": part.readable(), "occurred": found[f"\0{index}/o/{k}"],
+                         "reached": reached})
+        for k, row in enumerate(rows):
+            further = rows[k + 1]["reached"] if k + 1 < len(rows) else row["reached"]
+            row["near_misses"] = max(0, row["reached"] - further)
+        sigs[index]["parts"] = rows
+
+
 def set_stats(run: Run, sigs: list[dict]) -> dict:
     """Per set totals (see ``REPORT_SCHEMA``)."""
     c = run.counters
@@ -840,6 +911,7 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
     table = engine.compile(sigset)
     run = run_captures(captures, table, options)
     sigs = signature_stats(run, sigset, noisy_share)
+    add_part_stats(sigs, sigset, captures, options)
     scored = score_labels(run, sigset, labels) if labels else None
     if scored:
         for s in sigs:

@@ -102,6 +102,8 @@ def _ids(ids) -> str:
 def format_tables(report: dict) -> str:
     """The whole report as compact text tables, one section per part present."""
     parts = [_head(report), _signature_table(report), _lists(report)]
+    if any(s.get("parts") for s in report["signatures"]):
+        parts.append(_part_table(report))
     if report["labels"]:
         parts.append(_labels(report["labels"]))
     if report["against"]:
@@ -134,6 +136,23 @@ def _head(r) -> list[str]:
         if c["error"]:
             lines.append(f"  !! {c['error']}")
     return lines
+
+
+def _part_rows(report) -> list[list]:
+    """Per part of each multi-part signature: id, part, occurred, reached, near misses, pattern."""
+    return [[s["id"] if k == 0 else "", k + 1, p["occurred"], p["reached"], p["near_misses"],
+             p["pattern"]]
+            for s in report["signatures"] if s.get("parts") for k, p in enumerate(s["parts"])]
+
+
+PART_HEAD = ["signature", "part", "occurred", "reached", "near misses", "pattern"]
+PART_NOTE = ("occurred: the part alone; reached: chains that got to it (per end offset); "
+             "near misses: reached, not extended by the next part")
+
+
+def _part_table(r) -> list[str]:
+    return (["multi-part signatures:"] + _grid(PART_HEAD, _part_rows(r), {1, 2, 3, 4})
+            + [f"  ({PART_NOTE})"])
 
 
 def _signature_table(r) -> list[str]:
@@ -487,6 +506,10 @@ def render_html(report: dict, charts: dict) -> str:
     out.append("<p class=muted>by side: matches in the bytes clients / servers sent; hosts: "
                "distinct client / server addresses; label, then tags, then the pattern; "
                "times UTC</p>")
+    if any(g.get("parts") for g in report["signatures"]):
+        out.append("<h3>Multi-part signatures</h3>"
+                   + _table(PART_HEAD, _part_rows(report), {1, 2, 3, 4})
+                   + f"<p class=muted>{_e(PART_NOTE)}</p>")
     share = report["options"]["noisy_share"]
     out.append(f"<p><b>Never fired</b> ({len(report['never_fired'])}): "
                f"{_e(_ids(report['never_fired']))}<br><b>Noisy</b>, hit in more than "
