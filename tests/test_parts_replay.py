@@ -133,6 +133,7 @@ def test_rate_counts_parts_and_near_misses(tmp_path):
     assert [p["pattern"] for p in three["parts"]] == ['"AB"', '"CD"', "hex 45 <30-39>"]
     text = report.format_tables(rep)
     assert "multi-part signatures:" in text and "near misses" in text
+    assert '"AB" [0,3] "CD" [0,any] hex 45 <30-39>' in text  # the signature table's pattern
     page = report.render_html(rep, {})
     assert "<h3>Multi-part signatures</h3>" in page and "hex 45 &lt;30-39&gt;" in page
     assert '"near_misses": 2' in report.to_json(rep)

@@ -161,7 +161,7 @@ def _signature_table(r) -> list[str]:
             "last seen"]
     if scored:
         head += ["tp", "fp", "fn", "prec", "recall"]
-    head.append("label")
+    head += ["label", "pattern"]
     rows = []
     for s in r["signatures"]:
         row = [s["id"], s["matches"], s["flows"], f"{s['share']:.1%}", _sides(s),
@@ -172,6 +172,8 @@ def _signature_table(r) -> list[str]:
                     ratio(sc["recall"], 2)]
         label = s["label"] + (" [noisy]" if s["noisy"] else "")
         row.append(label if len(label) <= 40 else label[:37] + "...")
+        pattern = s.get("pattern", "")
+        row.append(pattern if len(pattern) <= 40 else pattern[:37] + "...")
         rows.append(row)
     right = set(range(1, 6)) | (set(range(8, 13)) if scored else set())
     return _grid(head, rows, right) + [
