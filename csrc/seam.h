@@ -18,7 +18,8 @@
  *         }
  *
  * The caller owns every struct: the image stays where it is (flash is fine),
- * the per-flow-side state is 16 bytes.
+ * the per-flow-side state is 16 bytes, plus ss_track_bytes(t) bytes of part
+ * tracker memory for a table with multi-part signatures (ss_scan_parts).
  */
 #ifndef SEAM_H
 #define SEAM_H
@@ -30,7 +31,7 @@
 extern "C" {
 #endif
 
-#define SS_FORMAT_VERSION 1u
+#define SS_FORMAT_VERSION 2u /* reads versions 1 and 2 (SS_NO_PARTS: version 1 only) */
 #define SS_LAYOUT_DENSE 1u
 #define SS_LAYOUT_COMPACT 2u
 
@@ -47,6 +48,7 @@ extern "C" {
 #define SS_ERR_TRANS -9     /* a transition names a state that does not exist */
 #define SS_ERR_OUTPUTS -10  /* output index or list out of range */
 #define SS_ERR_SIGS -11     /* a signature record is out of range */
+#define SS_ERR_PARTS -12    /* a part record is out of range or inconsistent */
 
 /* Signature record fields. */
 #define SS_SIDE_EITHER 0u
@@ -86,6 +88,9 @@ typedef struct {
     uint32_t max_len;
     uint32_t nports;
     uint32_t filter_log2; /* compact: bits in the transition filter, log2 */
+    const uint8_t *parts; /* version 2: 24-byte part records, NULL when none */
+    uint32_t nparts;      /* part records: the automaton's outputs are part ids; 0: signature ids */
+    uint32_t track_bytes; /* part tracker bytes per flow side (0 without parts) */
 } ss_table;
 
 /* The state of one flow side: what a device keeps per flow side.
@@ -141,6 +146,21 @@ void ss_new_datagram(ss_state *st);
 size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *data,
                size_t len, ss_match *out, size_t cap, size_t *nout);
 
+/* ---- The part tracker (multi-part signatures, FORMAT.md "The part tracker") ----
+ * A table with multi-part signatures needs, per flow side, ss_track_bytes(t)
+ * bytes of caller memory beside the ss_state (8-byte aligned; a multiple of
+ * 8, and 0 for a table without parts).  ss_track_reset clears it (track must
+ * point to that memory): call it with every ss_reset.
+ * ss_scan is ss_scan_parts with no tracker memory: multi-part signatures are
+ * then never reported (single-part ones are).  Built with SS_NO_PARTS, the
+ * runtime has no tracker and ss_load refuses images with parts (version 2). */
+#ifndef SS_NO_PARTS
+uint32_t ss_track_bytes(const ss_table *t);
+void ss_track_reset(const ss_table *t, void *track);
+size_t ss_scan_parts(const ss_table *t, ss_state *st, void *track, const ss_ctx *ctx,
+                     const uint8_t *data, size_t len, ss_match *out, size_t cap, size_t *nout);
+#endif
+
 /* ---- Host batch entry point: many (flow side, payload) pairs per call. ---- */
 
 #define SS_ITEM_RESET 0x01u /* before scanning: ss_reset(states[slot], reset_offset) */
@@ -166,6 +186,13 @@ typedef struct {
  * progress); cap >= 8 * t->max_outputs lets the lanes interleave. */
 size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
                      const uint8_t *data, ss_match *out, size_t cap, size_t *nout);
+#ifndef SS_NO_PARTS
+/* The same with the part tracker: slot k's memory is track + k * ss_track_bytes(t);
+ * an item's SS_ITEM_RESET clears it too. */
+size_t ss_scan_batch_parts(const ss_table *t, ss_state *states, void *track, ss_item *items,
+                           size_t n, const uint8_t *data, ss_match *out, size_t cap,
+                           size_t *nout);
+#endif
 
 #ifdef __cplusplus
 }

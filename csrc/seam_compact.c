@@ -261,7 +261,7 @@ static const ss__bound_rule compact_bounds[] = {
     {SS__FIELD(extra_list), 1, V_ENTRIES, V_TW1, V_TW, V_STATES, -SS_ERR_TRANS},
     {SS__FIELD(extra_index), 0, V_NEXTRA1, V_OW, V_OW, V_ENTRIES1, -SS_ERR_TRANS},
     {SS__FIELD(out_index), 0, V_NOWN1, V_OW, V_OW, V_OUTS1, -SS_ERR_OUTPUTS},
-    {SS__FIELD(out_list), 0, V_OUTS, V_OW, V_OW, V_NSIGS, -SS_ERR_OUTPUTS},
+    {SS__FIELD(out_list), 0, V_OUTS, V_OW, V_OW, V_NOUTS, -SS_ERR_OUTPUTS},
 };
 static const ss__rules compact_rules = {compact_sections, compact_bounds, 11, 7};
 

@@ -41,9 +41,23 @@ typedef struct {
     const ss_ctx *ctx;
     uint32_t item;
     size_t cap;
+#ifndef SS_NO_PARTS
+    uint8_t *track; /* the flow side's part tracker memory, or NULL */
+#endif
 } lane;
 
-/* Append signature `sig`'s match ending at `end` if it passes the filters. */
+#define SS__PART_RECORD 24u
+#define SS__NO_BOUND 0xFFFFFFFFu
+#ifndef SS_NO_PARTS
+/* Output `id` (a part record) ended at `end`: update the tracker; 1 when it
+ * completes its signature's occurrence, with *sig and *start set. */
+int ss__part(const ss_table *t, uint32_t id, uint64_t end, const lane *ln, uint32_t *sig,
+             uint64_t *start);
+int ss__check_parts(ss_table *t, uint32_t *v);
+#endif
+
+/* Append the match of automaton output `sig` (a signature, or a part record
+ * in a table with parts) ending at `end` if it passes the filters. */
 size_t ss__emit_sig(const ss_table *t, uint32_t sig, uint64_t end, const lane *ln,
                     ss_match *out, size_t n);
 
@@ -59,7 +73,8 @@ const uint8_t *ss__section(const ss_table *t, uint32_t nsec, uint32_t kind, uint
 enum {
     V_STATES, V_NCLASSES, V_NSIGS, V_TW, V_OW, V_TW1, V_ONE, V_TWO, V_FOUR, V_RANK, V_SIG,
     V_256, V_NSEC, V_CELLS, V_NMATCH1, V_BLOCKS, V_NPORTS, V_NPORTS1, V_NFAIL, V_NFAIL1, V_NEXTRA,
-    V_NEXTRA1, V_NOWN, V_NOWN1, V_ENTRIES, V_ENTRIES1, V_OUTS, V_OUTS1, V_FILTER, V_FILTER1, V_COUNT
+    V_NEXTRA1, V_NOWN, V_NOWN1, V_ENTRIES, V_ENTRIES1, V_OUTS, V_OUTS1, V_FILTER, V_FILTER1, V_NOUTS,
+    V_PART, V_NPARTS, V_COUNT
 };
 #define SS__FIELD(name) ((uint8_t)offsetof(ss_table, name))
 #define SS__EXACT 0u /* size == v[unit] * v[count] */

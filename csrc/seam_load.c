@@ -61,6 +61,9 @@ const char *ss_strerror(int code)
     case SS_ERR_TRANS: return "a transition names a state that does not exist";
     case SS_ERR_OUTPUTS: return "the output index or list is out of range";
     case SS_ERR_SIGS: return "a signature record is out of range";
+#ifndef SS_NO_PARTS
+    case SS_ERR_PARTS: return "a part record is out of range or inconsistent";
+#endif
     default: return "unknown error";
     }
 }
@@ -183,7 +186,7 @@ static int check_dense(ss_table *t, uint32_t *v, uint32_t want_max)
             most = stop - prev;
         for (e = prev; e < stop; e++) { /* ascending signature indices < nsigs */
             uint32_t sig = ss__ld_w(t->out_list + (size_t)e * t->out_width, t->out_width);
-            if (sig >= t->nsigs || (e > prev && sig <= last))
+            if (sig >= v[V_NOUTS] || (e > prev && sig <= last))
                 return SS_ERR_OUTPUTS;
             last = sig;
         }
@@ -212,8 +215,13 @@ int ss_load(ss_table *t, const void *image, size_t size)
         return SS_ERR_SHORT;
     if (ss_ld32(img) != 0x4D414553u) /* "SEAM" */
         return SS_ERR_MAGIC;
-    if (ss_ld16(img + 4) != SS_FORMAT_VERSION)
+#ifdef SS_NO_PARTS
+    if (ss_ld16(img + 4) != 1u) /* version 2 is an image with parts */
         return SS_ERR_VERSION;
+#else
+    if (ss_ld16(img + 4) - 1u > 1u)
+        return SS_ERR_VERSION;
+#endif
     isize = ss_ld32(img + 8);
     if (isize < HEADER_SIZE || isize > size)
         return SS_ERR_SHORT;
@@ -235,7 +243,13 @@ int ss_load(ss_table *t, const void *image, size_t size)
     t->size = isize;
     v[V_STATES] = t->states = ss_ld32(img + 20);
     t->first_match = ss_ld32(img + 24);
-    v[V_NSIGS] = t->nsigs = ss_ld32(img + 28);
+    v[V_NOUTS] = v[V_NSIGS] = t->nsigs = ss_ld32(img + 28);
+#ifndef SS_NO_PARTS
+    if (ss_ld16(img + 4) == 2u && (t->nparts = ss_ld32(img + 48)) != 0u) {
+        t->track_bytes = ss_ld32(img + 52) & ~7u; /* version 1: those bytes are reserved */
+        v[V_NOUTS] = t->nparts;
+    }
+#endif
     v[V_NCLASSES] = t->nclasses = ss_ld16(img + 32);
     t->stride = ss_ld16(img + 34);
     v[V_TW] = t->trans_width = img[36];
@@ -253,7 +267,7 @@ int ss_load(ss_table *t, const void *image, size_t size)
     if (t->states == 0 || /* nclasses 0 is refused with the classes */
         (t->trans_width != 1 && t->trans_width != 2 && t->trans_width != 4) ||
         (t->out_width != 2 && t->out_width != 4) || t->max_len > 0xFFFFu ||
-        t->max_outputs > t->nsigs)
+        t->max_outputs > v[V_NOUTS])
         rc = SS_ERR_HEADER;
     else if (HEADER_SIZE + SECTION_ENTRY * nsec > isize)
         rc = SS_ERR_SECTION;
@@ -266,6 +280,11 @@ int ss_load(ss_table *t, const void *image, size_t size)
         if (len > longest)
             longest = len;
     }
+#ifndef SS_NO_PARTS
+    if (rc == SS_OK && t->nparts) /* the parts' lengths bound the failure steps */
+        rc = ss__check_parts(t, v);
+    else
+#endif
     if (rc == SS_OK && longest != t->max_len)
         rc = SS_ERR_SIGS; /* max_len bounds the failure steps of one byte */
 #ifndef SS_NO_DENSE

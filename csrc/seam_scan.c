@@ -29,12 +29,25 @@ size_t ss__emit_sig(const ss_table *t, uint32_t sig, uint64_t end, const lane *l
                     ss_match *out, size_t n)
 {
     const ss_ctx *ctx = ln->ctx;
-    const uint8_t *r = t->sigs + (size_t)SS__SIG_RECORD * sig;
-    uint32_t len = ss_ld16(r + 4), nports = ss_ld16(r + 6);
+    const uint8_t *r;
+    uint32_t nports;
     uint64_t start, base = 0;
-    if (end < len || n >= ln->cap)
-        return n; /* cannot happen with a well-formed table and cap */
-    start = end - len;
+#ifndef SS_NO_PARTS
+    if (t->nparts) { /* outputs are parts: the tracker says when a signature ends */
+        if (!ss__part(t, sig, end, ln, &sig, &start))
+            return n;
+    } else
+#endif
+    {
+        r = t->sigs + (size_t)SS__SIG_RECORD * sig;
+        if (end < ss_ld16(r + 4))
+            return n; /* cannot happen with a well-formed table */
+        start = end - ss_ld16(r + 4);
+    }
+    r = t->sigs + (size_t)SS__SIG_RECORD * sig;
+    nports = ss_ld16(r + 6);
+    if (n >= ln->cap)
+        return n; /* cannot happen with a cap >= max_outputs */
     if (ctx->side && r[0] && r[0] != ctx->side)
         return n;
     if (ctx->transport && r[1] && r[1] != ctx->transport)
@@ -195,8 +208,19 @@ static size_t scanl(const ss_table *t, lane *ln, const uint8_t *const *p, size_t
 #endif
 }
 
+#ifndef SS_NO_PARTS
 size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *data,
                size_t len, ss_match *out, size_t cap, size_t *nout)
+{
+    return ss_scan_parts(t, st, NULL, ctx, data, len, out, cap, nout);
+}
+
+size_t ss_scan_parts(const ss_table *t, ss_state *st, void *track, const ss_ctx *ctx,
+                     const uint8_t *data, size_t len, ss_match *out, size_t cap, size_t *nout)
+#else
+size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *data,
+               size_t len, ss_match *out, size_t cap, size_t *nout)
+#endif
 {
     static const ss_ctx none = {0, 0, 0, 0};
     lane ln;
@@ -212,6 +236,9 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
     ln.ctx = ctx ? ctx : &none;
     ln.item = 0;
     ln.cap = cap;
+#ifndef SS_NO_PARTS
+    ln.track = (uint8_t *)track;
+#endif
     done = scan1(t, &ln, data, len, out, cap, nout);
     st->state = ln.state;
     st->offset = ln.offset;
@@ -221,10 +248,20 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
 
 /* Make item `it` ready to scan: apply its reset (idempotent while nothing
  * of it has been scanned) and fill its lane. */
-static void begin(const ss_table *t, ss_state *states, const ss_item *it, uint32_t index,
-                  size_t cap, lane *ln)
+static void begin(const ss_table *t, ss_state *states, uint8_t *track, const ss_item *it,
+                  uint32_t index, size_t cap, lane *ln)
 {
     ss_state *st = &states[it->slot];
+#ifndef SS_NO_PARTS
+    ln->track = NULL;
+    if (track) {
+        ln->track = track + (size_t)it->slot * t->track_bytes;
+        if ((it->flags & SS_ITEM_RESET) && it->done == 0)
+            memset(ln->track, 0, t->track_bytes);
+    }
+#else
+    (void)track;
+#endif
     if ((it->flags & SS_ITEM_RESET) && it->done == 0)
         ss_reset(st, it->reset_offset);
     if (st->state >= t->states)
@@ -253,9 +290,24 @@ static void finish(ss_state *states, ss_item *it, const lane *ln)
  * together by the shortest remaining length, then finished lanes take the
  * next items.  An item whose slot is held by a busy lane waits (items of one
  * slot must be scanned in order): meanwhile the oldest lane runs alone. */
+#ifndef SS_NO_PARTS
 size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
                      const uint8_t *data, ss_match *out, size_t cap, size_t *nout)
 {
+    return ss_scan_batch_parts(t, states, NULL, items, n, data, out, cap, nout);
+}
+
+size_t ss_scan_batch_parts(const ss_table *t, ss_state *states, void *track, ss_item *items,
+                           size_t n, const uint8_t *data, ss_match *out, size_t cap,
+                           size_t *nout)
+#else
+size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
+                     const uint8_t *data, ss_match *out, size_t cap, size_t *nout)
+#endif
+{
+#ifdef SS_NO_PARTS
+    uint8_t *track = NULL;
+#endif
     lane ln[LANES];
     const uint8_t *p[LANES];
     size_t held[LANES], next = 0, k, active = 0, lead = 0;
@@ -293,7 +345,7 @@ size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t
                 if (j >= stop)
                     break;
                 it = &items[j];
-                begin(t, states, it, (uint32_t)j, cap, &ln[k]);
+                begin(t, states, (uint8_t *)track, it, (uint32_t)j, cap, &ln[k]);
                 if (it->done >= it->len) { /* nothing to scan (e.g. a reset alone) */
                     finish(states, it, &ln[k]);
                     j++;

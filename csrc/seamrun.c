@@ -8,7 +8,9 @@
  *         offsets, end exclusive), then "end OFFSET".  The options fill the
  *         scan context (ss_ctx); with --datagram each piece is one datagram.
  *         out[] holds only max_outputs matches, so every match state but the
- *         first of a call takes the "out[] full, call again" path.
+ *         first of a call takes the "out[] full, call again" path.  A table
+ *         with multi-part signatures scans with part tracker memory
+ *         (ss_scan_parts), unless built with SS_NO_PARTS.
  *     seamrun --crc FILE
  *         Print the CRC-32 of FILE as 8 hex digits.
  *     seamrun --check FILE...
@@ -44,6 +46,28 @@ static uint8_t stream_buf[SEAMRUN_MAX_FILE];
 static uint8_t chunk_buf[SEAMRUN_MAX_FILE];
 static ss_match out_buf[MAX_OUT];
 static uint8_t probe[PROBE_SIZE];
+#define MAX_TRACK (1u << 20)
+#ifndef SS_NO_PARTS
+static uint64_t track_buf[MAX_TRACK / 8u];
+#endif
+
+/* Part tracker memory for `slots` flow sides at the end of track_buf (NULL
+ * when the table needs none or more than the harness has), cleared. */
+static uint8_t *track_area(const ss_table *t, size_t slots)
+{
+#ifndef SS_NO_PARTS
+    size_t need = slots * ss_track_bytes(t);
+    uint8_t *p;
+    if (need == 0 || need > MAX_TRACK)
+        return NULL;
+    p = (uint8_t *)track_buf + MAX_TRACK - need;
+    memset(p, 0, need);
+    return p;
+#else
+    (void)t, (void)slots;
+    return NULL;
+#endif
+}
 
 /* Read the whole file into the end of buf[0..cap).  Returns a pointer to its
  * first byte and sets *size, or prints the problem and returns NULL. */
@@ -87,8 +111,8 @@ static void contract_broken(const char *what)
 
 /* Scan one piece to its end, calling again whenever out[] fills.  Prints the
  * matches when `print` is set. */
-static void scan_piece(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t *p,
-                       size_t len, size_t cap, int print)
+static void scan_piece(const ss_table *t, ss_state *st, uint8_t *track, const ss_ctx *ctx,
+                       const uint8_t *p, size_t len, size_t cap, int print)
 {
     ss_match *out = out_area(cap);
     size_t done = 0;
@@ -96,7 +120,12 @@ static void scan_piece(const ss_table *t, ss_state *st, const ss_ctx *ctx, const
         ss_new_datagram(st); /* each piece is one datagram */
     do {
         size_t n = 0, i;
+#ifndef SS_NO_PARTS
+        size_t got = ss_scan_parts(t, st, track, ctx, p + done, len - done, out, cap, &n);
+#else
         size_t got = ss_scan(t, st, ctx, p + done, len - done, out, cap, &n);
+        (void)track;
+#endif
         if (n > cap)
             contract_broken("ss_scan reported more matches than out[] holds");
         if (got > len - done)
@@ -169,14 +198,17 @@ static void exercise(const ss_table *t)
     static ss_item items[BATCH_ITEMS];
     size_t cap = t->max_outputs, k, start = 0;
     ss_state st;
+    uint8_t *track = track_area(t, 1);
     if (8u * cap > MAX_OUT)
         return;
     ss_reset(&st, 0);
-    scan_piece(t, &st, NULL, probe, PROBE_SIZE, cap, 0);
+    scan_piece(t, &st, track, NULL, probe, PROBE_SIZE, cap, 0);
     ss_reset(&st, 0xFFFFFF00u);
+    track = track_area(t, 1);
     for (k = 0; k < PROBE_SIZE; k += 1000u)
-        scan_piece(t, &st, &filtered, probe + k, PROBE_SIZE - k < 1000u ? PROBE_SIZE - k : 1000u,
-                   cap, 0);
+        scan_piece(t, &st, track, &filtered, probe + k,
+                   PROBE_SIZE - k < 1000u ? PROBE_SIZE - k : 1000u, cap, 0);
+    track = track_area(t, BATCH_SLOTS);
 
     memset(items, 0, sizeof items);
     for (k = 0; k < BATCH_ITEMS; k++) {
@@ -190,8 +222,13 @@ static void exercise(const ss_table *t)
     cap = 8u * (size_t)t->max_outputs;
     while (start < BATCH_ITEMS) {
         size_t n = 0, got;
+#ifndef SS_NO_PARTS
+        got = ss_scan_batch_parts(t, states, track, items + start, BATCH_ITEMS - start, probe,
+                                  out_area(cap), cap, &n);
+#else
         got = ss_scan_batch(t, states, items + start, BATCH_ITEMS - start, probe,
                             out_area(cap), cap, &n);
+#endif
         if (n > cap)
             contract_broken("ss_scan_batch reported more matches than out[] holds");
         if (got == 0 && n == 0)
@@ -225,6 +262,7 @@ static int run_scan(int argc, char **argv)
     ss_ctx ctx;
     ss_table t;
     ss_state st;
+    uint8_t *track;
     const uint8_t *img, *data;
     size_t img_size, size, chunk = 0, cap, k;
     unsigned long v;
@@ -280,8 +318,9 @@ static int run_scan(int argc, char **argv)
         return 2;
 
     ss_reset(&st, 0);
+    track = track_area(&t, 1);
     if (chunk == 0 || chunk >= size) {
-        scan_piece(&t, &st, &ctx, data, size, cap, 1);
+        scan_piece(&t, &st, track, &ctx, data, size, cap, 1);
     } else {
         /* Each piece is copied to the end of chunk_buf, so that a read past
          * the piece is caught under AddressSanitizer. */
@@ -289,7 +328,7 @@ static int run_scan(int argc, char **argv)
             size_t len = size - k < chunk ? size - k : chunk;
             uint8_t *piece = chunk_buf + sizeof chunk_buf - len;
             memcpy(piece, data + k, len);
-            scan_piece(&t, &st, &ctx, piece, len, cap, 1);
+            scan_piece(&t, &st, track, &ctx, piece, len, cap, 1);
         }
     }
     printf("end %llu\n", (unsigned long long)st.offset);

@@ -178,7 +178,8 @@ def _m4_sizes(build_dir) -> dict[str, tuple[int, int, int]]:
     assert r.returncode == 0, r.stdout + r.stderr
     found = re.findall(r"(\w+)\s+code (\d+) B, read-only data (\d+) B, \.data\+\.bss (\d+) B",
                        r.stdout)
-    assert {name for name, *_ in found} == {"dense", "compact", "both"}, r.stdout
+    assert {name for name, *_ in found} == {"dense", "compact", "both", "dense_parts",
+                                            "compact_parts", "both_parts"}, r.stdout
     return {name: (int(c), int(ro), int(d)) for name, c, ro, d in found}
 
 
@@ -193,6 +194,14 @@ def test_cortex_m4_runtime_fits_2_kib_of_code(build_dir, layout):
     # SS_SMALL; either layout's runtime is at most 2 KiB of code.
     code, _rodata, _data = _m4_sizes(build_dir)[layout]
     assert code <= 2048
+
+
+@pytest.mark.parametrize("layout", ["dense", "compact"])
+def test_cortex_m4_runtime_with_the_part_tracker_fits_2_5_kib_of_code(build_dir, layout):
+    # With the part tracker (multi-part signatures) and its entry points
+    # (ss_scan_parts, ss_track_bytes, ss_track_reset): at most 2.5 KiB.
+    code, _rodata, _data = _m4_sizes(build_dir)[f"{layout}_parts"]
+    assert code <= 2560
 
 
 # --- CRC-32 -------------------------------------------------------------------
@@ -490,7 +499,7 @@ def _damaged(base: Image) -> list[tuple[str, bytes, int | None]]:
         ("magic-SEAX", b"SEAX" + b.blob[4:], ERR["MAGIC"]),
         ("magic-lowercase", b"seam" + b.blob[4:], ERR["MAGIC"]),
         ("version-0", b.patched((4, "<H", 0)), ERR["VERSION"]),
-        ("version-2", b.patched((4, "<H", 2)), ERR["VERSION"]),
+        ("version-3", b.patched((4, "<H", 3)), ERR["VERSION"]),
         ("version-ffff", b.patched((4, "<H", 0xFFFF)), ERR["VERSION"]),
         ("layout-0", b.patched((6, "<H", 0)), ERR["LAYOUT"]),
         ("layout-ffff", b.patched((6, "<H", 0xFFFF)), ERR["LAYOUT"]),

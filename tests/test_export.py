@@ -183,6 +183,7 @@ static int run_case(unsigned k, const char *path)
     FILE *f;
     long len;
     uint8_t *data;
+    void *track;
     size_t done = 0, nout, i, used;
     int rc = ss_load(&t, c->image, c->size);
 
@@ -211,8 +212,12 @@ static int run_case(unsigned k, const char *path)
     fclose(f);
     memset(&ctx, 0, sizeof ctx);
     ss_reset(&st, 0);
+    track = calloc(1, ss_track_bytes(&t) + 8u); /* the part tracker's memory, cleared */
+    if (track == NULL)
+        return 2;
     while (done < (size_t)len) {
-        used = ss_scan(&t, &st, &ctx, data + done, (size_t)len - done, out, c->max_outputs, &nout);
+        used = ss_scan_parts(&t, &st, track, &ctx, data + done, (size_t)len - done, out,
+                             c->max_outputs, &nout);
         for (i = 0; i < nout; i++) {
             printf("match %u ", k);
             print_hex(c->ids[out[i].sig]);
@@ -225,6 +230,7 @@ static int run_case(unsigned k, const char *path)
         }
         done += used;
     }
+    free(track);
     free(data);
     return 0;
 }

@@ -129,6 +129,19 @@ def _with_crc(blob: bytearray) -> bytes:
     return bytes(blob)
 
 
+# Multi-part signatures with byte sets and spacings (format version 2).
+PART_SIGNATURES = [
+    {"id": "force-commit", "fold_case": True,
+     "part": [{"hex": "a5 5a ?? 06"}, {"text": "FORCE", "spacing": [0, 40]},
+              {"text": "COMMIT", "fold_case": False}]},
+    {"id": "a-a", "part": [{"hex": "61 ??"}, {"hex": "<30-39> 61", "spacing": [1, 6]}]},
+    {"id": "udp-two", "transport": "udp", "part": [{"text": "ab"}, {"text": "ab"}]},
+    {"id": "digits", "hex": "3d <30-39> <30-39>", "window": [0, 200]},
+]
+PART_STREAM = (b"\xa5\x5a\x01\x06 force COMMIT a1xx5a a.9a ababab =42 " * 3
+               + b"\xa5\x5a\x02\x06" + b"-" * 41 + b"FORCE COMMIT")
+
+
 def seed_inputs() -> dict[str, bytes]:
     """File name -> fuzz input: valid images of every layout with streams and
     control bits, and damaged images (refused, or accepted only through the
@@ -145,6 +158,11 @@ def seed_inputs() -> dict[str, bytes]:
         seeds[f"{layout}-wide.bin"] = fuzz_input(wide, _wide_stream(), 0x50)
         seeds[f"{layout}-one-sig.bin"] = fuzz_input(one, b"aaaa" * 40, EMPTY_RESETS | 0x10)
         seeds[f"{layout}-empty-stream.bin"] = fuzz_input(lab, b"")
+        parts = seamscan.compile(signature_set(PART_SIGNATURES, name="parts"),
+                                 layout=layout).to_bytes()
+        seeds[f"{layout}-parts.bin"] = fuzz_input(parts, PART_STREAM, 0x30)
+        seeds[f"{layout}-parts-offset-u32-edge.bin"] = fuzz_input(parts, PART_STREAM * 2,
+                                                                  OFFSET_U32_EDGE | 0x10)
         seeds[f"{layout}-trailing-bytes.bin"] = fuzz_input(lab + b"\0" * 8, LAB_STREAM, 0,
                                                            image_len=len(lab) + 8)
         # Damaged: refused as they are; the CRC-rewrite bit lets the

@@ -356,4 +356,82 @@ VECTORS: list[Vector] = [
         b"heat",
         [],
     ),
+    # --- byte sets, ?? and parts (issue 10); worked by hand from the
+    # contract: re.fullmatch of the translated regex, one match per end at
+    # the latest start ------------------------------------------------------
+    Vector(
+        "set-digit-range",
+        [_hex("t-digit", "74 3d <30-39>")],
+        b"t=5 t=x t=9",
+        [("t-digit", 0, 3), ("t-digit", 8, 11)],
+    ),
+    Vector(
+        "set-complement-of-cr-lf",
+        [_hex("not-eol", "3a <!0d 0a>")],
+        b":\r:a:\n:",
+        [("not-eol", 2, 4)],
+    ),
+    Vector(
+        "wildcard-sequence-byte",
+        [_hex("frame", "a5 5a ?? 06")],
+        b"\xa5\x5a\x01\x06\xa5\x5a\xa5\x5a\x06\x06",
+        [("frame", 0, 4), ("frame", 6, 10)],
+    ),
+    Vector(
+        "set-range-with-fold",
+        [_hex("abc-z", "<61-63> 7a", fold_case=True)],
+        b"Az bZ dz cz",
+        [("abc-z", 0, 2), ("abc-z", 3, 5), ("abc-z", 9, 11)],
+    ),
+    Vector(
+        "parts-in-order-any-spacing",
+        [{"id": "ab-cd", "part": [{"text": "AB"}, {"text": "CD"}]}],
+        b"CD AB xx CD CD",
+        [("ab-cd", 3, 11), ("ab-cd", 3, 14)],
+    ),
+    Vector(
+        "parts-spacing-max-met-and-missed",
+        [{"id": "ab-cd", "part": [{"text": "AB"}, {"text": "CD", "spacing": [0, 2]}]}],
+        b"ABxxCD ABxxxCD",
+        [("ab-cd", 0, 6)],
+    ),
+    Vector(
+        "parts-spacing-min",
+        [{"id": "a-b", "part": [{"text": "A"}, {"text": "B", "spacing": [2, 3]}]}],
+        b"AB AxB AxxB AxxxB",
+        [("a-b", 7, 11), ("a-b", 12, 17)],
+    ),
+    Vector(
+        "parts-shortest-occurrence",
+        [{"id": "ab-cd", "part": [{"text": "AB"}, {"text": "CD"}]}],
+        b"ABABCD",
+        [("ab-cd", 2, 6)],
+    ),
+    Vector(
+        "parts-never-overlap",
+        [{"id": "ab-bc", "part": [{"text": "AB"}, {"text": "BC"}]}],
+        b"ABC ABBC",
+        [("ab-bc", 4, 8)],
+    ),
+    Vector(
+        "parts-same-part-twice",
+        [{"id": "ab-ab", "part": [{"text": "ab"}, {"text": "ab"}]}],
+        b"ababab",
+        [("ab-ab", 0, 4), ("ab-ab", 2, 6)],
+    ),
+    Vector(
+        "parts-with-window",
+        [{"id": "a-b", "window": [2, 8], "part": [{"text": "A"}, {"text": "B"}]}],
+        b"AB AB AB",
+        [("a-b", 3, 5), ("a-b", 6, 8)],
+    ),
+    Vector(
+        "three-parts-sets-and-fold-override",
+        [{"id": "zone-force", "fold_case": True,
+          "part": [{"hex": "a5 5a ?? 06"}, {"text": "FORCE", "spacing": [0, 40]},
+                   {"text": "COMMIT", "fold_case": False}]},
+         _text("commit", "COMMIT")],
+        b"\xa5\x5a\x07\x06 force=1 COMMIT commit",
+        [("zone-force", 0, 19), ("commit", 13, 19)],
+    ),
 ]

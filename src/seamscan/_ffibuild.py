@@ -25,6 +25,7 @@ typedef struct {
     const uint8_t *own_rank; const uint8_t *extra_filter;
     uint32_t size, layout, states, first_match, nsigs, nclasses, stride, trans_width,
              out_width, max_outputs, max_len, nports, filter_log2;
+    const uint8_t *parts; uint32_t nparts, track_bytes;
 } ss_table;
 typedef struct { uint32_t state; uint32_t unit; uint64_t offset; } ss_state;
 typedef struct { uint8_t side; uint8_t transport; uint16_t server_port; uint32_t flags; } ss_ctx;
@@ -42,6 +43,13 @@ size_t ss_scan(const ss_table *t, ss_state *st, const ss_ctx *ctx, const uint8_t
                size_t len, ss_match *out, size_t cap, size_t *nout);
 size_t ss_scan_batch(const ss_table *t, ss_state *states, ss_item *items, size_t n,
                      const uint8_t *data, ss_match *out, size_t cap, size_t *nout);
+uint32_t ss_track_bytes(const ss_table *t);
+void ss_track_reset(const ss_table *t, void *track);
+size_t ss_scan_parts(const ss_table *t, ss_state *st, void *track, const ss_ctx *ctx,
+                     const uint8_t *data, size_t len, ss_match *out, size_t cap, size_t *nout);
+size_t ss_scan_batch_parts(const ss_table *t, ss_state *states, void *track, ss_item *items,
+                           size_t n, const uint8_t *data, ss_match *out, size_t cap,
+                           size_t *nout);
 size_t sf_pcap_records(const uint8_t *buf, size_t len, size_t pos, int big, uint32_t units,
                        uint32_t limit, int ethernet, uint8_t *out, size_t cap, size_t *end_pos,
                        size_t *fast);

@@ -373,6 +373,11 @@ def cmd_compile(args) -> int:
     print(f"{args.rules}: {len(sigset)} signatures, {automaton.states:,} states, "
           f"{automaton.nclasses} byte classes, compiled in {elapsed:.2f} s")
     print(layout_report(tables, args.budget, sample))
+    if any(not sig.is_literal for sig in sigset):  # byte sets, ?? and parts can cost states
+        sizes = {n: t.nbytes for n, t in tables.items()}
+        worst = engine.costliest_signatures(automaton, list(sigset), sizes)[:5]
+        print("  states only one signature needs (the costliest): "
+              + ", ".join(f"{sid} {states:,}" for sid, states, _saved in worst))
     fits = [n for n in engine.AUTO_ORDER
             if args.budget is None or tables[n].nbytes <= args.budget]
     chosen = args.layout if args.layout != "auto" else (fits[0] if fits else None)
@@ -431,6 +436,7 @@ def layout_report(tables: dict, budget=None, sample=None) -> str:
         lines.append(row)
     lines.append("  (bytes/state: the image less signature records, ports and names, over the "
                  "states; steps/byte: state visits per byte)")
+    lines.append(flow_side_memory(next(iter(tables.values()))))
     for name, table in tables.items():
         lines.append(f"  {name} sections:")
         lines.extend(_sections(table))
@@ -467,6 +473,16 @@ def cmd_inspect(args) -> int:
     print(f"  {len(table)} signatures, longest {h.max_len} bytes, at most {h.max_outputs} "
           f"outputs per state; {automaton_bytes(table) / table.states:.2f} automaton bytes "
           "per state")
+    print(flow_side_memory(table))
     print("  sections:")
     print("\n".join(_sections(table)))
     return EXIT_OK
+
+
+def flow_side_memory(table) -> str:
+    """The RAM a flow side needs: the 16-byte state, plus the part tracker's bytes."""
+    track = table.track_bytes
+    if not track:
+        return "  per flow side: 16 bytes of state (no multi-part signatures)"
+    return (f"  per flow side: 16 bytes of state + {track:,} bytes of part tracker "
+            f"(ss_track_bytes; {table.header.nparts} parts)")

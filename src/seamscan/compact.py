@@ -197,7 +197,8 @@ def encode_compact(automaton, signatures) -> bytes:
             own_list.extend(mine)
             own_index.append(len(own_list))
     # One width for the output list and both index sections.
-    out_width = 2 if max(len(signatures), len(own_list), extra_index[-1]) < 1 << 16 else 4
+    out_width = 2 if max(image.output_count(signatures), len(own_list),
+                         extra_index[-1]) < 1 << 16 else 4
     sig_records, ports = image._signature_records(signatures)
     sections = [
         (image.SEC_CLASSES, bytes(a.classes)),
@@ -216,7 +217,8 @@ def encode_compact(automaton, signatures) -> bytes:
         (image.SEC_PORTS, ports),
         (image.SEC_NAMES, image._names(signatures)),
     ]
-    return image._assemble(LAYOUT_COMPACT, sections, states=n, first_match=n,
+    return image._assemble(LAYOUT_COMPACT, sections, signatures=signatures, states=n,
+                           first_match=n,
                            sigs=len(signatures), nclasses=a.nclasses, stride=a.nclasses,
                            trans_width=width, out_width=out_width,
                            max_outputs=max((len(o) for o in a.outputs), default=0),

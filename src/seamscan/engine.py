@@ -67,8 +67,7 @@ def compile(sigset, layout: str = "dense", budget=None, *,
         raise compiler.CompileError(
             f"layout {layout!r} is not available; choose one of: {', '.join(ENCODERS)}, auto")
     sigs = list(sigset)
-    automaton = compiler.build([s.byte_sets() for s in sigs], max_states=max_states,
-                               names=[s.id for s in sigs])
+    automaton = build_automaton(sigs, max_states=max_states)
     limit = None if budget is None else parse_size(budget)
     sizes = {}
     for name in AUTO_ORDER if layout == "auto" else (layout,):
@@ -82,11 +81,28 @@ def compile(sigset, layout: str = "dense", budget=None, *,
     raise BudgetError(limit, sizes, automaton, sigs)
 
 
+def build_automaton(sigs, *, max_states: int = compiler.DEFAULT_MAX_STATES):
+    """The automaton of a list of signatures: one pattern per signature, or
+    per part when the set has multi-part signatures (``image.patterns``);
+    ``unique_nodes`` is summed back per signature."""
+    pats = image.patterns(sigs)
+    if len(pats) == len(sigs):
+        return compiler.build(pats, max_states=max_states, names=[s.id for s in sigs])
+    owners = [i for i, s in enumerate(sigs) for _ in s.pattern_parts()]
+    names = [f"{s.id} part {k + 1}" if len(s.pattern_parts()) > 1 else s.id
+             for s in sigs for k in range(len(s.pattern_parts()))]
+    automaton = compiler.build(pats, max_states=max_states, names=names)
+    per_sig = [0] * len(sigs)
+    for owner, n in zip(owners, automaton.unique_nodes, strict=True):
+        per_sig[owner] += n
+    automaton.unique_nodes = per_sig
+    return automaton
+
+
 def compile_layouts(sigset, *, max_states: int = compiler.DEFAULT_MAX_STATES):
     """One automaton, every layout: (automaton, {layout: Table})."""
     sigs = list(sigset)
-    automaton = compiler.build([s.byte_sets() for s in sigs], max_states=max_states,
-                               names=[s.id for s in sigs])
+    automaton = build_automaton(sigs, max_states=max_states)
     tables = {}
     for name, encode in ENCODERS.items():
         table = Table.from_bytes(encode(automaton, sigs))
@@ -204,6 +220,11 @@ class Table:
     def max_outputs(self) -> int:
         return int(self._t.max_outputs)
 
+    @property
+    def track_bytes(self) -> int:
+        """Part tracker bytes a flow side needs beside its 16-byte state (0: none)."""
+        return int(lib.ss_track_bytes(self._t))
+
     def __len__(self) -> int:
         return int(self._t.nsigs)
 
@@ -250,10 +271,11 @@ class Stream:
                  datagram=False):
         self.table = table
         self._st = ffi.new("ss_state *")
+        self._track = ffi.new("uint64_t[]", max(1, table.track_bytes // 8))
         self._ctx = ffi.new("ss_ctx *", context(side, transport, server_port, datagram))
         self._out = ffi.new("ss_match[]", table._cap)
         self._datagram = datagram
-        lib.ss_reset(self._st, 0)
+        self.reset(0)
 
     @property
     def offset(self) -> int:
@@ -263,6 +285,7 @@ class Stream:
     def reset(self, offset: int = 0) -> None:
         """Back to the start state (as after a gap), next byte at ``offset``."""
         lib.ss_reset(self._st, offset)
+        lib.ss_track_reset(self.table._t, self._track)
 
     def feed(self, data) -> list[Match]:
         """Scan the next bytes; with ``datagram=True`` each call is one datagram."""
@@ -275,8 +298,8 @@ class Stream:
         nout = ffi.new("size_t *")
         t = self.table
         while True:
-            done += lib.ss_scan(t._t, self._st, self._ctx, buf + done, total - done,
-                                self._out, t._cap, nout)
+            done += lib.ss_scan_parts(t._t, self._st, self._track, self._ctx, buf + done,
+                                      total - done, self._out, t._cap, nout)
             if nout[0]:
                 found += t._matches(self._out, nout[0])
             if done >= total:
@@ -290,6 +313,9 @@ class BatchScanner:
         self.table = table
         self.slots = slots
         self.states = ffi.new("ss_state[]", max(1, slots))
+        self._track_bytes = table.track_bytes
+        self.track = ffi.new("uint64_t[]", max(1, slots * self._track_bytes // 8))
+        self._track_arg = self.track if self._track_bytes else ffi.NULL
         self._out = ffi.new("ss_match[]", table._cap)
         self._nout = ffi.new("size_t *")
         self._items = bytearray()
@@ -297,6 +323,8 @@ class BatchScanner:
 
     def reset(self, slot: int, offset: int = 0) -> None:
         lib.ss_reset(self.states + slot, offset)
+        if self._track_bytes:
+            lib.ss_track_reset(self.table._t, self.track + slot * (self._track_bytes // 8))
 
     def offset(self, slot: int) -> int:
         return int(self.states[slot].offset)
@@ -330,8 +358,8 @@ class BatchScanner:
         found: list[tuple[int, int, int, int]] = []
         start = 0
         while True:
-            done = lib.ss_scan_batch(t._t, self.states, items + start, n - start, buf,
-                                     self._out, t._cap, self._nout)
+            done = lib.ss_scan_batch_parts(t._t, self.states, self._track_arg, items + start,
+                                           n - start, buf, self._out, t._cap, self._nout)
             k = self._nout[0]
             if k:
                 got = MATCH.iter_unpack(ffi.buffer(self._out, k * MATCH.size))

@@ -82,11 +82,19 @@ report.json (also what ``--format json`` prints) is one object:
   set                {flows, connections, flows_flagged, flagged_share,
                       bytes_scanned, matches, frames, gaps, first_ts,
                       last_ts, signatures, fired, never_fired, noisy}
-  signatures         [{id, label, tags, matches, flows, share, clients,
+  signatures         [{id, label, pattern, tags, matches, flows, share, clients,
                        servers, first_ts, last_ts,
                        sides: {client: {matches, flows}, server: {...}},
                        noisy, scores}]   in set order; scores: null without
-                     labels, else {tp, fp, fn, unlabelled, precision, recall}
+                     labels, else {tp, fp, fn, unlabelled, precision, recall};
+                     pattern: the signature as a person reads it ("text",
+                     hex with ?? and <sets>, parts joined by [MIN,MAX]);
+                     parts: null, or per part of a multi-part signature
+                     {pattern, occurred, reached, near_misses}: matches of
+                     the part alone, of the parts up to it (chains that got
+                     there, counted per end offset), and reached minus the
+                     next part's reached (chains that got no further; 0 for
+                     the last part); counted by a second replay
   never_fired        [id]
   noisy              [id]
   flows              [{transport, client_ip, client_port, server_ip,
@@ -574,7 +582,8 @@ def signature_stats(run: Run, sigset, noisy_share: float = NOISY_SHARE) -> list[
         s = run.sigs.get(sig.id) or _Sig()
         share = len(s.flows) / nflows if nflows else 0.0
         out.append({
-            "id": sig.id, "label": sig.label, "tags": list(sig.tags), "matches": s.matches,
+            "id": sig.id, "label": sig.label, "pattern": sig.readable(), "tags": list(sig.tags),
+            "matches": s.matches,
             "flows": len(s.flows), "share": share, "clients": len(s.clients),
             "servers": len(s.servers), "first_ts": _finite(s.first_ts),
             "last_ts": _finite(s.last_ts),
@@ -582,6 +591,71 @@ def signature_stats(run: Run, sigset, noisy_share: float = NOISY_SHARE) -> list[
                       for side in ("client", "server")},
             "noisy": share > noisy_share, "scores": None})
     return out
+
+
+def part_probes(sigset) -> list[tuple[int, str, int, dict]]:
+    """For each multi-part signature: (signature index, kind, part number,
+    probe signature): ``occurred`` probes are one part alone, ``reached``
+    probes the parts up to it (for part 2 and on; the last one is the
+    signature itself), each with the signature's side, transport, ports and
+    scope and no window.  Probe ids cannot clash with a set's ids."""
+    probes = []
+    for index, sig in enumerate(sigset):
+        parts = sig.pattern_parts()
+        if len(parts) < 2:
+            continue
+        common = {"side": sig.side, "transport": sig.transport}
+        if sig.ports is not None:
+            common["ports"] = list(sig.ports)
+        if sig.transport != "tcp":
+            common["scope"] = sig.scope
+
+        def table(part, k):
+            entry = {part.field: part.source, "fold_case": part.fold_case}
+            if k:
+                entry["spacing"] = [part.low, "any" if part.high is None else part.high]
+            return entry
+
+        for k, part in enumerate(parts):
+            probes.append((index, "occurred", k, {"id": f"\0{index}/o/{k}", **common,
+                                                  part.field: part.source,
+                                                  "fold_case": part.fold_case}))
+            if 0 < k < len(parts) - 1:
+                probes.append((index, "reached", k, {
+                    "id": f"\0{index}/r/{k}", **common,
+                    "part": [table(p, j) for j, p in enumerate(parts[:k + 1])]}))
+    return probes
+
+
+def add_part_stats(sigs: list[dict], sigset, captures, options) -> None:
+    """Fill ``parts`` of each multi-part signature's stats (see ``REPORT_SCHEMA``):
+    one more replay, of the probes of :func:`part_probes`, when the set has any."""
+    for s in sigs:
+        s["parts"] = None
+    probes = part_probes(sigset)
+    if not probes:
+        return
+    from seamscan import engine
+    from seamscan.signatures import signature_set
+
+    run = run_captures(captures, engine.compile(signature_set([p for *_x, p in probes])),
+                       options)
+    found = {p["id"]: (run.sigs[p["id"]].matches if p["id"] in run.sigs else 0)
+             for *_x, p in probes}
+    for index, sig in enumerate(sigset):
+        parts = sig.pattern_parts()
+        if len(parts) < 2:
+            continue
+        rows = []
+        for k, part in enumerate(parts):
+            reached = (found[f"\0{index}/o/0"] if k == 0 else sigs[index]["matches"]
+                       if k == len(parts) - 1 else found[f"\0{index}/r/{k}"])
+            rows.append({"pattern": part.readable(), "occurred": found[f"\0{index}/o/{k}"],
+                         "reached": reached})
+        for k, row in enumerate(rows):
+            further = rows[k + 1]["reached"] if k + 1 < len(rows) else row["reached"]
+            row["near_misses"] = max(0, row["reached"] - further)
+        sigs[index]["parts"] = rows
 
 
 def set_stats(run: Run, sigs: list[dict]) -> dict:
@@ -850,6 +924,7 @@ def rate(captures, sigset, *, labels: Labels | None = None, against=None,
     table = engine.compile(sigset)
     run = run_captures(captures, table, options, each_file=each_file)
     sigs = signature_stats(run, sigset, noisy_share)
+    add_part_stats(sigs, sigset, captures, options)
     scored = score_labels(run, sigset, labels) if labels else None
     if scored:
         for s in sigs:

@@ -13,7 +13,8 @@ import zlib
 from dataclasses import dataclass
 
 MAGIC = b"SEAM"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # written for sets with multi-part signatures; others are written as 1
+LITERAL_VERSION = 1
 HEADER_SIZE = 64
 SECTION_ENTRY = 12
 ALIGN = 8
@@ -31,9 +32,10 @@ SEC_OUT_LIST = 4
 SEC_SIGS = 5
 SEC_PORTS = 6
 SEC_NAMES = 7
+SEC_PARTS = 17
 SECTION_NAMES = {SEC_CLASSES: "classes", SEC_DENSE: "transitions", SEC_OUT_INDEX: "output index",
                  SEC_OUT_LIST: "output list", SEC_SIGS: "signature records", SEC_PORTS: "ports",
-                 SEC_NAMES: "names"}
+                 SEC_NAMES: "names", SEC_PARTS: "part records"}
 
 SIDES = {"either": 0, "client": 1, "server": 2}
 TRANSPORTS = {"any": 0, "tcp": 1, "udp": 2}
@@ -41,7 +43,10 @@ SIG_HAS_WINDOW = 0x01
 SIG_DATAGRAM = 0x02  # UDP matches are confined to one datagram
 SIG_RECORD = struct.Struct("<BBBxHHIII")  # side, transport, flags, len, nports, ports_first, w0, w1
 
-HEADER = struct.Struct("<4sHHII" "III" "I" "HHBBH" "II" "16x")
+HEADER = struct.Struct("<4sHHII" "III" "I" "HHBBH" "II" "II8x")
+# sig, index, count, length, ring capacity, spacing MIN, MAX, link offset
+PART_RECORD = struct.Struct("<IHHHHIII")
+assert PART_RECORD.size == 24
 assert HEADER.size == HEADER_SIZE
 
 
@@ -67,6 +72,8 @@ class Header:
     max_outputs: int
     max_len: int
     sections: dict[int, tuple[int, int]]  # kind -> (offset, size) of its first directory entry
+    nparts: int = 0  # version 2: part records (the automaton's outputs); 0: outputs are signatures
+    track_bytes: int = 0  # version 2: part tracker bytes per flow side
 
     @property
     def layout_name(self) -> str:
@@ -93,7 +100,7 @@ def encode_dense(automaton, signatures) -> bytes:
     nstates = a.states
     width = _width(nstates - 1)
     trans = np.ascontiguousarray(a.trans, dtype=_DTYPES[width]).tobytes()
-    out_width = 2 if len(signatures) <= 1 << 16 else 4
+    out_width = 2 if output_count(signatures) <= 1 << 16 else 4
     index = [0]
     flat: list[int] = []
     for outs in a.outputs:
@@ -113,7 +120,8 @@ def encode_dense(automaton, signatures) -> bytes:
         (SEC_PORTS, ports),
         (SEC_NAMES, names),
     ]
-    return _assemble(LAYOUT_DENSE, sections, states=nstates, first_match=a.first_match,
+    return _assemble(LAYOUT_DENSE, sections, signatures=signatures, states=nstates,
+                     first_match=a.first_match,
                      sigs=len(signatures), nclasses=a.nclasses, stride=a.nclasses,
                      trans_width=width, out_width=out_width, max_outputs=max_outputs,
                      max_len=a.max_len)
@@ -133,10 +141,50 @@ def _signature_records(signatures) -> tuple[bytes, bytes]:
         if sig.scope == "datagram":
             flags |= SIG_DATAGRAM
         sig_ports = sig.ports or ()
-        records += SIG_RECORD.pack(SIDES[sig.side], TRANSPORTS[sig.transport], flags, len(sig),
+        records += SIG_RECORD.pack(SIDES[sig.side], TRANSPORTS[sig.transport], flags,
+                                   min(len(sig), 0xFFFF),
                                    len(sig_ports), len(ports), w0, w1)
         ports.extend(sig_ports)
     return bytes(records), np.asarray(ports, dtype="<u2").tobytes()
+
+
+def has_parts(signatures) -> bool:
+    """A set with a multi-part signature: its image is version 2, with part records."""
+    return any(len(sig.pattern_parts()) > 1 for sig in signatures)
+
+
+def patterns(signatures):
+    """The automaton's patterns (each a byte-set sequence), in output-id order:
+    one per signature, or one per part (signature order, then part order)
+    when the set has multi-part signatures."""
+    if not has_parts(signatures):
+        return [sig.byte_sets() for sig in signatures]
+    return [part.sets for sig in signatures for part in sig.pattern_parts()]
+
+
+def output_count(signatures) -> int:
+    return len(patterns(signatures)) if has_parts(signatures) else len(signatures)
+
+
+def part_records(signatures) -> tuple[bytes, int, int]:
+    """(part records, their count, tracker bytes per flow side): FORMAT.md
+    section 17; each link's ring capacity from ``seamscan.tracker``."""
+    from seamscan import tracker
+
+    out = bytearray()
+    slot = 0
+    count = 0
+    for index, sig in enumerate(signatures):
+        parts = sig.pattern_parts()
+        caps = tracker.signature_links(parts)
+        for k, (part, cap) in enumerate(zip(parts, caps, strict=True)):
+            high = tracker.ANY if part.high is None else part.high
+            out += PART_RECORD.pack(index, k, len(parts), len(part), cap, part.low,
+                                    high if k else 0, slot if cap else 0)
+            count += 1
+            if cap:
+                slot += tracker.link_bytes(cap)
+    return bytes(out), count, slot
 
 
 def _names(signatures) -> bytes:
@@ -148,7 +196,13 @@ def _names(signatures) -> bytes:
     return bytes(out)
 
 
-def _assemble(layout: int, sections, **fields) -> bytes:
+def _assemble(layout: int, sections, signatures=(), **fields) -> bytes:
+    nparts = track = 0
+    version = LITERAL_VERSION
+    if has_parts(signatures):
+        records, nparts, track = part_records(signatures)
+        sections = [*sections, (SEC_PARTS, records)]
+        version = FORMAT_VERSION
     directory = bytearray()
     body = bytearray()
     offset = HEADER_SIZE + SECTION_ENTRY * len(sections)
@@ -163,10 +217,11 @@ def _assemble(layout: int, sections, **fields) -> bytes:
         offset += len(data) + pad
     size = offset
     rest = bytes(directory) + bytes(body)
-    head_tail = HEADER.pack(MAGIC, FORMAT_VERSION, layout, size, 0, 0, fields["states"],
+    head_tail = HEADER.pack(MAGIC, version, layout, size, 0, 0, fields["states"],
                             fields["first_match"], fields["sigs"], fields["nclasses"],
                             fields["stride"], fields["trans_width"], fields["out_width"],
-                            len(sections), fields["max_outputs"], fields["max_len"])
+                            len(sections), fields["max_outputs"], fields["max_len"], nparts,
+                            track)
     crc = crc32(head_tail[16:] + rest)
     header = head_tail[:12] + struct.pack("<I", crc) + head_tail[16:]
     return header + rest
@@ -179,7 +234,10 @@ def read_header(image) -> Header:
     if len(image) < HEADER_SIZE:
         raise TableError(f"not a table image: {len(image)} bytes, shorter than the {HEADER_SIZE}-byte header")
     (magic, version, layout, size, crc, flags, states, first_match, sigs, nclasses, stride,
-     trans_width, out_width, nsections, max_outputs, max_len) = HEADER.unpack_from(image)
+     trans_width, out_width, nsections, max_outputs, max_len, nparts,
+     track_bytes) = HEADER.unpack_from(image)
+    if version != FORMAT_VERSION:  # version 1: those bytes are reserved
+        nparts = track_bytes = 0
     if magic != MAGIC:
         raise TableError(f"not a table image: starts with {bytes(magic)!r}, expected {MAGIC!r}")
     sections: dict[int, tuple[int, int]] = {}
@@ -189,7 +247,8 @@ def read_header(image) -> Header:
             kind, _flags, off, sz = struct.unpack_from("<HHII", image, HEADER_SIZE + SECTION_ENTRY * i)
             sections.setdefault(kind, (off, sz))  # the first entry of a kind counts, as in ss_load
     return Header(version, layout, size, crc, flags, states, first_match, sigs, nclasses, stride,
-                  trans_width, out_width, nsections, max_outputs, max_len, sections)
+                  trans_width, out_width, nsections, max_outputs, max_len, sections, nparts,
+                  track_bytes)
 
 
 def read_names(image, header: Header) -> tuple[list[str], list[str]]:

@@ -1,14 +1,20 @@
 """Brute-force reference matcher: the oracle every engine layout is tested against.
 
-Deliberately naive: each signature is searched for on its own, at every
-start offset, with ``bytes.find``; no automaton, no shared state.  Case
-folding compares ``bytes.lower()`` of both sides, which (per the Python
-documentation of ``bytes.lower``) changes only the ASCII letters A-Z,
-exactly the pairing ``fold_case`` defines.
+Deliberately naive: each signature is searched for on its own; no
+automaton, no shared state.  A literal signature is found at every start
+offset with ``bytes.find``; case folding compares ``bytes.lower()`` of both
+sides, which (per the Python documentation of ``bytes.lower``) changes only
+the ASCII letters A-Z, exactly the pairing ``fold_case`` defines.  Any other
+signature (byte sets, ``??``, parts) is translated into a Python bytes
+regular expression (:func:`signature_regex`: each byte set a character
+class, each spacing ``.{MIN,MAX}``, DOTALL) and, for every end offset ``e``,
+the largest ``s`` whose ``data[s:e]`` it ``fullmatch``-es is the match: the
+contract of FORMAT.md and the signature format.
 """
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterable
 
 from seamscan.signatures import MAX_PORT, Signature
@@ -54,8 +60,11 @@ def reference_matches(
             continue
         if server_port is not None and sig.ports is not None and server_port not in sig.ports:
             continue
-        haystack, needle = (lowered, sig.data.lower()) if sig.fold_case else (data, sig.data)
         low, high = sig.window if sig.window is not None else (0, len(data))
+        if not sig.is_literal:
+            found.extend((index, s, e) for s, e in _regex_matches(sig, data, low, high))
+            continue
+        haystack, needle = (lowered, sig.data.lower()) if sig.fold_case else (data, sig.data)
         # find(needle, low, high) only reports occurrences lying wholly in data[low:high].
         start = haystack.find(needle, low, high)
         while start != -1:
@@ -63,3 +72,37 @@ def reference_matches(
             start = haystack.find(needle, start + 1, high)
     found.sort(key=lambda match: (match[2], match[0]))
     return found
+
+
+def _byte_class(byte_set: frozenset[int]) -> bytes:
+    if len(byte_set) == 256:
+        return b"."
+    return b"[" + b"".join(b"\\x%02x" % b for b in sorted(byte_set)) + b"]"
+
+
+def signature_regex(sig: Signature) -> re.Pattern[bytes]:
+    """The signature as a bytes regex (DOTALL): byte sets as classes (fold_case
+    already in them), spacings as ``.{MIN,MAX}`` / ``.{MIN,}``."""
+    out = []
+    for k, part in enumerate(sig.pattern_parts()):
+        if k:
+            high = b"" if part.high is None else b"%d" % part.high
+            out.append(b".{%d,%s}" % (part.low, high))
+        out.extend(_byte_class(s) for s in part.sets)
+    return re.compile(b"".join(out), re.DOTALL)
+
+
+def _regex_matches(sig: Signature, data: bytes, low: int, high: int):
+    """(start, end) per end offset in [low, high]: the largest start >= low."""
+    pattern = signature_regex(sig)
+    parts = sig.pattern_parts()
+    shortest = sig.shortest()
+    longest = None
+    if all(p.high is not None for p in parts):
+        longest = sum(len(p) + p.high for p in parts)
+    for e in range(low + shortest, min(high, len(data)) + 1):
+        first = low if longest is None else max(low, e - longest)
+        for s in range(e - shortest, first - 1, -1):
+            if pattern.fullmatch(data, s, e):
+                yield s, e
+                break

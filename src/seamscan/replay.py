@@ -251,14 +251,15 @@ class ScanSink:
             scanner, table = self.scanner, self.table
             items = ffi.cast("ss_item *", self.c_items)
             out, nout, cap = scanner._out, scanner._nout, table._cap
-            scan, tt, states, data = lib.ss_scan_batch, table._t, scanner.states, self.c_data
+            scan, tt, states, data = lib.ss_scan_batch_parts, table._t, scanner.states, self.c_data
+            track = scanner._track_arg
             unpack = engine.MATCH.iter_unpack
             self._metab = None
             pending = []
             start = 0
             while start < n:
                 window = n - start if len(pending) < _PENDING_CAP else 1
-                done = scan(tt, states, items + start, window, data, out, cap, nout)
+                done = scan(tt, states, track, items + start, window, data, out, cap, nout)
                 k = nout[0]
                 if k:
                     got = unpack(ffi.buffer(out, k * _MATCH_SIZE))

@@ -22,7 +22,7 @@ import time
 CSV_COLUMNS = ("id", "label", "tags", "matches", "flows", "share", "clients", "servers",
                "first_ts", "last_ts", "client_matches", "server_matches", "noisy", "tp", "fp",
                "fn", "unlabelled", "precision", "recall", "old_matches", "delta",
-               "device_missed")
+               "device_missed", "pattern")
 LIST_LIMIT = 20  # terminal: list items shown before "... and N more"
 CHART_SIGNATURES = 40  # most signatures one bar chart shows
 HTML_FLOWS = 500  # most flows the page lists
@@ -123,6 +123,8 @@ def _ids(ids) -> str:
 def format_tables(report: dict) -> str:
     """The whole report as compact text tables, one section per part present."""
     parts = [_head(report), _signature_table(report), _lists(report)]
+    if any(s.get("parts") for s in report["signatures"]):
+        parts.append(_part_table(report))
     if report["labels"]:
         parts.append(_labels(report["labels"]))
     if report["against"]:
@@ -157,13 +159,30 @@ def _head(r) -> list[str]:
     return lines
 
 
+def _part_rows(report) -> list[list]:
+    """Per part of each multi-part signature: id, part, occurred, reached, near misses, pattern."""
+    return [[s["id"] if k == 0 else "", k + 1, p["occurred"], p["reached"], p["near_misses"],
+             p["pattern"]]
+            for s in report["signatures"] if s.get("parts") for k, p in enumerate(s["parts"])]
+
+
+PART_HEAD = ["signature", "part", "occurred", "reached", "near misses", "pattern"]
+PART_NOTE = ("occurred: the part alone; reached: chains that got to it (per end offset); "
+             "near misses: reached, not extended by the next part")
+
+
+def _part_table(r) -> list[str]:
+    return (["multi-part signatures:"] + _grid(PART_HEAD, _part_rows(r), {1, 2, 3, 4})
+            + [f"  ({PART_NOTE})"])
+
+
 def _signature_table(r) -> list[str]:
     scored = r["labels"] is not None
     head = ["signature", "matches", "flows", "share", "by side", "hosts", "first seen",
             "last seen"]
     if scored:
         head += ["tp", "fp", "fn", "prec", "recall"]
-    head.append("label")
+    head += ["label", "pattern"]
     rows = []
     dated = _dated(r)
     for s in r["signatures"]:
@@ -176,6 +195,8 @@ def _signature_table(r) -> list[str]:
                     ratio(sc["recall"], 2)]
         label = s["label"] + (" [noisy]" if s["noisy"] else "")
         row.append(label if len(label) <= 40 else label[:37] + "...")
+        pattern = s.get("pattern", "")
+        row.append(pattern if len(pattern) <= 40 else pattern[:37] + "...")
         rows.append(row)
     right = set(range(1, 6)) | (set(range(8, 13)) if scored else set())
     return _grid(head, rows, right) + [
@@ -300,7 +321,7 @@ def signature_rows(report: dict) -> list[list]:
                      s["sides"]["server"]["matches"], int(s["noisy"]), _cell(sc.get("tp")),
                      _cell(sc.get("fp")), _cell(sc.get("fn")), _cell(sc.get("unlabelled")),
                      _cell(sc.get("precision")), _cell(sc.get("recall")), *ab_cells,
-                     "" if missed is None else missed.get(s["id"], 0)])
+                     "" if missed is None else missed.get(s["id"], 0), s.get("pattern", "")])
     return rows
 
 
@@ -538,11 +559,18 @@ def render_html(report: dict, charts: dict) -> str:
             row += [sc["tp"], sc["fp"], sc["fn"], ratio(sc["precision"]), ratio(sc["recall"])]
         label = g["label"] + (" (noisy)" if g["noisy"] else "")
         rows.append(row + [_Raw(_e(label) + (f' <span class=muted>{_e(", ".join(g["tags"]))}'
-                                             "</span>" if g["tags"] else ""))])
+                                             "</span>" if g["tags"] else "")
+                                + (f'<br><code>{_e(g["pattern"])}</code>'
+                                   if g.get("pattern") else ""))])
     out.append(_table(head, rows, set(range(1, 6)) | (set(range(8, 13)) if scored else set()),
                       {len(head) - 1}))
     out.append("<p class=muted>by side: matches in the bytes clients / servers sent; hosts: "
-               "distinct client / server addresses; label, then tags; times UTC</p>")
+               "distinct client / server addresses; label, then tags, then the pattern; "
+               "times UTC</p>")
+    if any(g.get("parts") for g in report["signatures"]):
+        out.append("<h3>Multi-part signatures</h3>"
+                   + _table(PART_HEAD, _part_rows(report), {1, 2, 3, 4})
+                   + f"<p class=muted>{_e(PART_NOTE)}</p>")
     share = report["options"]["noisy_share"]
     out.append(f"<p><b>Never fired</b> ({len(report['never_fired'])}): "
                f"{_e(_ids(report['never_fired']))}<br><b>Noisy</b>, hit in more than "

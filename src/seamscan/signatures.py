@@ -28,9 +28,26 @@ Pattern rules:
   and ``"dead beef"`` are the same four bytes, ``"d ead"`` is an error.  No
   other whitespace is accepted; wrap a long pattern with a TOML multi-line
   basic string and a line-ending backslash, which TOML itself removes.
-* ``fold_case`` pairs the ASCII letters A-Z with a-z and nothing else.
+* ``hex`` also takes ``??`` (any byte) and byte sets ``<...>``: byte pairs
+  and ranges ``30-39`` separated by single spaces, a leading ``!`` for the
+  complement (``<!0d 0a>``: any byte but CR and LF).  An empty set, a
+  reversed range or a set of every byte is an error.
+* ``fold_case`` pairs the ASCII letters A-Z with a-z and nothing else; it
+  applies to byte sets as well (a set gains the other case of each letter
+  in it, then ``!`` complements), as ``re.IGNORECASE`` does on bytes.
 * A pattern holds 1 to 65535 bytes; a window is ``[start, end)`` with
   ``0 <= start < end <= 4294967295`` and must be able to hold the pattern.
+
+Multi-part signatures: instead of ``text`` / ``hex``, up to ``MAX_PARTS``
+``[[signature.part]]`` tables, each with exactly one of ``text`` / ``hex``,
+an optional ``fold_case`` (default: the signature's) and, from the second
+part on, ``spacing = [MIN, MAX]`` (bytes between the end of the previous
+part and the start of this one; ``MAX`` may be ``"any"``; default
+``[0, "any"]``; both at most ``MAX_SPACING``).  An occurrence is what
+``re.fullmatch`` of the parts joined by ``.{MIN,MAX}`` (DOTALL) accepts;
+one match is reported per end offset, starting at the latest start.  The
+part tracker's memory per flow side (``seamscan.tracker``) is limited to
+``tracker.MAX_SIGNATURE_BYTES`` per signature.
 
 Every problem of a file is collected and raised at once as one
 :class:`SignatureError`; nothing here ever lets a raw traceback escape for
@@ -44,7 +61,7 @@ import os
 import re
 import tomllib
 from collections.abc import Iterable, Iterator, Mapping
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 MAX_PATTERN_BYTES = 65535
@@ -56,13 +73,19 @@ TRANSPORTS = ("tcp", "udp", "any")
 SCOPES = ("datagram", "stream")
 
 SIGNATURE_FIELDS = (
-    "id", "text", "hex", "fold_case", "side", "transport",
+    "id", "text", "hex", "part", "fold_case", "side", "transport",
     "ports", "window", "scope", "label", "tags",
 )
+PART_FIELDS = ("text", "hex", "fold_case", "spacing")
+MAX_PARTS = 16
+MAX_SPACING = 65535
 SET_FIELDS = ("name", "version")
 TOP_LEVEL_KEYS = ("set", "signature")
 
 _HEX_OK = re.compile(r"(?:[0-9A-Fa-f]{2}| )*")
+_HEX_TOKEN = re.compile(r"<[^<>]*>|[^ <>]+|[<>][^ ]*")
+_PAIR = re.compile(r"[0-9A-Fa-f]{2}")
+ALL_BYTES = frozenset(range(256))
 _HEX_DIGITS = frozenset("0123456789abcdefABCDEF")
 _TOML_POSITION = re.compile(r"^(?P<msg>.*) \(at line (?P<line>\d+), column (?P<col>\d+)\)$", re.S)
 _TOML_AT_END = re.compile(r"^(?P<msg>.*) \(at end of document\)$", re.S)
@@ -105,9 +128,36 @@ class SignatureError(ValueError):
 
 
 @dataclass(frozen=True, slots=True)
-class Signature:
-    """One validated signature: a literal byte pattern plus where it applies.
+class Part:
+    """One part of a signature: a sequence of byte sets (fold_case already
+    applied), the spacing before it (``low``, ``high``; ``high`` None: no
+    bound; ``(0, 0)`` for the first part) and its source, for display."""
 
+    sets: tuple[frozenset[int], ...]
+    low: int = 0
+    high: int | None = 0
+    field: str = "hex"  # "text" or "hex": how it was written
+    source: str = ""  # the text or hex string as written
+    fold_case: bool = False
+
+    def __len__(self) -> int:
+        return len(self.sets)
+
+    def readable(self) -> str:
+        """``"FORCE"`` / ``"force"i`` for text, ``hex a5 5a ?? <30-39>`` for hex."""
+        if self.field == "text":
+            body = self.source.encode("unicode_escape").decode("ascii").replace('"', '\\"')
+            return f'"{body}"' + ("i" if self.fold_case else "")
+        return f"hex {self.source.strip()}" + (" (fold_case)" if self.fold_case else "")
+
+
+@dataclass(frozen=True, slots=True)
+class Signature:
+    """One validated signature: a byte pattern plus where it applies.
+
+    ``data`` is the pattern when it is one literal (no byte sets, one part),
+    else ``b""``; ``parts`` holds the pattern as parts of byte sets (empty for
+    a literal built in Python: :meth:`pattern_parts` then derives it).
     ``ports`` is sorted and deduplicated (``None``: any server port);
     ``window`` is ``(start, end)``, end exclusive, in stream bytes (``None``:
     anywhere).  Build signatures through :func:`signature_set` or the loaders
@@ -124,21 +174,57 @@ class Signature:
     scope: str = "datagram"
     label: str = ""
     tags: tuple[str, ...] = ()
+    parts: tuple[Part, ...] = ()
+    written: str = field(default="hex", compare=False)  # a literal's field: "text" or "hex"
+
+    def pattern_parts(self) -> tuple[Part, ...]:
+        """The pattern as parts (one part for a literal, whose ``parts`` is empty)."""
+        if self.parts:
+            return self.parts
+        if self.written == "text":
+            try:
+                source = self.data.decode("utf-8")
+            except UnicodeDecodeError:
+                source = None
+            if source is not None:
+                return (Part(_literal_sets(self.data, self.fold_case), field="text",
+                             source=source, fold_case=self.fold_case),)
+        return (Part(_literal_sets(self.data, self.fold_case), field="hex",
+                     source=self.data.hex(" "), fold_case=self.fold_case),)
 
     def byte_sets(self) -> tuple[frozenset[int], ...]:
-        """Per pattern byte, the set of haystack bytes that match it.
+        """Per pattern byte, the set of haystack bytes that match it (a
+        single-part signature only).
 
         ``{b}``, or ``{b, b ^ 0x20}`` for an ASCII letter when ``fold_case``.
         """
-        if not self.fold_case:
-            return tuple(frozenset((b,)) for b in self.data)
-        return tuple(
-            frozenset((b, b ^ 0x20)) if _is_ascii_letter(b) else frozenset((b,))
-            for b in self.data
-        )
+        parts = self.pattern_parts()
+        if len(parts) != 1:
+            raise ValueError(f"signature {self.id!r} has {len(parts)} parts; use pattern_parts()")
+        return parts[0].sets
+
+    @property
+    def is_literal(self) -> bool:
+        """One part written as bytes (fold_case allowed), held in ``data``."""
+        return not self.parts
+
+    def shortest(self) -> int:
+        """Bytes in the shortest occurrence: every part plus every spacing's minimum."""
+        return sum(len(p) + p.low for p in self.pattern_parts())
+
+    def readable(self) -> str:
+        """The pattern as a person reads it: ``"text"``, ``hex ...``, parts
+        joined by their spacings ``.. [0,40] ..``."""
+        out = []
+        for k, part in enumerate(self.pattern_parts()):
+            if k:
+                high = "any" if part.high is None else part.high
+                out.append(f"[{part.low},{high}]")
+            out.append(part.readable())
+        return " ".join(out)
 
     def __len__(self) -> int:
-        return len(self.data)
+        return self.shortest()
 
 
 class SignatureSet:
@@ -368,16 +454,23 @@ def _check_signature(
     elif not sig_id.strip():
         bad("id", "must not be empty")
 
-    data = _check_pattern(entry, bad, found, where)
-
     fold_case = _check_bool(entry, "fold_case", False, bad)
+    parts = _check_parts(entry, fold_case, bad, found, where)
+    checked_parts = parts
+    data = b""
+    written = "hex"
+    if parts is not None and len(parts) == 1 and _is_literal_part(parts[0]):
+        data = _literal_bytes(parts[0])
+        written = parts[0].field
+        parts = ()
+
     side = _check_choice(entry, "side", SIDES, "either", bad)
     transport = _check_choice(entry, "transport", TRANSPORTS, "any", bad)
     scope = _check_choice(entry, "scope", SCOPES, "datagram", bad)
     if "scope" in entry and transport == "tcp":
         bad("scope", "only applies to UDP, but this signature has transport = 'tcp'")
     ports = _check_ports(entry, bad)
-    window = _check_window(entry, data, bad)
+    window = _check_window(entry, checked_parts, bad)
     label = entry.get("label", "")
     if not isinstance(label, str):
         bad("label", _expected("a string", label))
@@ -405,11 +498,93 @@ def _check_signature(
         scope=scope,
         label=label,
         tags=tuple(tags),
+        parts=parts,
+        written=written,
     )
 
 
-def _check_pattern(entry, bad, found: list[str], where: str) -> bytes | None:
-    """The pattern bytes from exactly one of ``text`` / ``hex``, or None."""
+def _check_parts(entry, fold_case: bool, bad, found: list[str], where: str
+                 ) -> tuple[Part, ...] | None:
+    """The signature's parts: its own text / hex, or its ``part`` tables."""
+    if "part" not in entry:
+        part = _check_pattern(entry, fold_case, bad, found, where)
+        return None if part is None else (part,)
+    if "text" in entry or "hex" in entry:
+        found.append(f"{where}: field 'part': the signature also has "
+                     f"{'text' if 'text' in entry else 'hex'}; give either parts or one pattern")
+        return None
+    tables = entry["part"]
+    if not isinstance(tables, list | tuple) or not tables:
+        bad("part", _expected("[[signature.part]] tables", tables))
+        return None
+    if len(tables) > MAX_PARTS:
+        bad("part", f"{len(tables)} parts; the limit is {MAX_PARTS}")
+        return None
+    parts: list[Part] = []
+    ok = True
+    for k, table in enumerate(tables, start=1):
+        pwhere = f"{where}: part {k}"
+        if not isinstance(table, Mapping):
+            found.append(f"{pwhere}: {_expected('a table with text or hex', table)}")
+            ok = False
+            continue
+
+        def pbad(field: str, message: str, pwhere=pwhere) -> None:
+            found.append(f"{pwhere}: field {field!r}: {message}")
+
+        for key in table:
+            if key not in PART_FIELDS:
+                pbad(key, "unknown field" + _suggest(key, PART_FIELDS))
+                ok = False
+        fold = _check_bool(table, "fold_case", fold_case, pbad)
+        part = _check_pattern(table, fold, pbad, found, pwhere)
+        spacing = _check_spacing(table, k, pbad)
+        if part is None or spacing is None:
+            ok = False
+            continue
+        parts.append(replace(part, low=spacing[0], high=spacing[1]))
+    if not ok:
+        return None
+    from seamscan import tracker
+
+    need = tracker.signature_bytes(parts)
+    if need > tracker.MAX_SIGNATURE_BYTES:
+        bad("part", f"the part tracker would need {need:,} bytes per flow side for this "
+            f"signature (the limit is {tracker.MAX_SIGNATURE_BYTES:,}); lower a spacing's "
+            "minimum or make the part before it longer or more specific")
+        return None
+    return tuple(parts)
+
+
+def _check_spacing(table, k: int, bad) -> tuple[int, int | None] | None:
+    """``spacing = [MIN, MAX | "any"]``: (MIN, MAX or None); (0, 0) for part 1."""
+    if k == 1:
+        if "spacing" in table:
+            bad("spacing", "the first part has no spacing (nothing comes before it)")
+            return None
+        return (0, 0)
+    value = table.get("spacing", [0, "any"])
+    if not (isinstance(value, list | tuple) and len(value) == 2 and _is_int(value[0])
+            and (_is_int(value[1]) or value[1] == "any")):
+        bad("spacing", _expected('[MIN, MAX] with MAX an integer or "any"', value))
+        return None
+    low, high = value
+    if not 0 <= low <= MAX_SPACING:
+        bad("spacing", f"MIN {low} is out of range 0..{MAX_SPACING}")
+        return None
+    if high == "any":
+        return (low, None)
+    if not 0 <= high <= MAX_SPACING:
+        bad("spacing", f"MAX {high} is out of range 0..{MAX_SPACING} (or \"any\")")
+        return None
+    if high < low:
+        bad("spacing", f"MAX {high} is less than MIN {low}")
+        return None
+    return (low, high)
+
+
+def _check_pattern(entry, fold_case: bool, bad, found: list[str], where: str) -> Part | None:
+    """The pattern of exactly one of ``text`` / ``hex``, as a :class:`Part`, or None."""
     has_text, has_hex = "text" in entry, "hex" in entry
     if has_text and has_hex:
         found.append(f"{where}: fields 'text' and 'hex': both given; use exactly one")
@@ -428,38 +603,127 @@ def _check_pattern(entry, bad, found: list[str], where: str) -> bytes | None:
         except UnicodeEncodeError as exc:
             bad("text", f"cannot be encoded as UTF-8 (character {exc.start + 1}: {exc.reason})")
             return None
+        sets = _literal_sets(data, fold_case)
     else:
         try:
-            data = _parse_hex(value)
+            sets = _parse_hex(value, fold_case)
         except ValueError as exc:
             bad("hex", str(exc))
             return None
-    if not data:
+    if not sets:
         bad(field, "empty pattern")
         return None
-    if len(data) > MAX_PATTERN_BYTES:
-        bad(field, f"pattern is {len(data)} bytes long; the limit is {MAX_PATTERN_BYTES}")
+    if len(sets) > MAX_PATTERN_BYTES:
+        bad(field, f"pattern is {len(sets)} bytes long; the limit is {MAX_PATTERN_BYTES}")
         return None
-    return data
+    return Part(sets, field=field, source=value, fold_case=fold_case)
 
 
-def _parse_hex(text: str) -> bytes:
-    """Hex byte pairs, single spaces allowed between pairs; ValueError explains."""
+def _literal_sets(data: bytes, fold_case: bool) -> tuple[frozenset[int], ...]:
+    if not fold_case:
+        return tuple(frozenset((b,)) for b in data)
+    return tuple(_fold(frozenset((b,))) for b in data)
+
+
+def _fold(byte_set: frozenset[int]) -> frozenset[int]:
+    """The set with the other ASCII case of each letter in it."""
+    return byte_set | frozenset(b ^ 0x20 for b in byte_set if _is_ascii_letter(b))
+
+
+def _is_literal_part(part: Part) -> bool:
+    """Written as bytes only: text, or hex without ``??`` and sets."""
+    return part.field == "text" or not any(ch in part.source for ch in "?<")
+
+
+def _literal_bytes(part: Part) -> bytes:
+    """The bytes of a literal part, as written (fold_case not applied)."""
+    if part.field == "text":
+        return part.source.encode("utf-8")
+    return bytes.fromhex(part.source)
+
+
+def _parse_hex(text: str, fold_case: bool = False) -> tuple[frozenset[int], ...]:
+    """Hex tokens (byte pairs, ``??``, ``<...>`` sets), single spaces between
+    tokens (pairs may also be written together); ValueError explains."""
     if _HEX_OK.fullmatch(text):
-        return bytes.fromhex(text)
-    digits = 0
-    for pos, ch in enumerate(text, start=1):
-        if ch == " ":
-            if digits % 2:
-                raise ValueError(f"a space at character {pos} splits a byte pair")
-        elif ch in _HEX_DIGITS:
-            digits += 1
+        return _literal_sets(bytes.fromhex(text), fold_case)
+    if "?" not in text and "<" not in text and ">" not in text:
+        digits = 0
+        for pos, ch in enumerate(text, start=1):
+            if ch == " ":
+                if digits % 2:
+                    raise ValueError(f"a space at character {pos} splits a byte pair")
+            elif ch in _HEX_DIGITS:
+                digits += 1
+            else:
+                raise ValueError(
+                    f"{ch!r} at character {pos} is not a hex digit "
+                    "(allowed: 0-9, a-f, A-F, ??, <...> byte sets, and spaces between tokens)"
+                )
+        raise ValueError(f"odd number of hex digits ({digits})")
+    sets: list[frozenset[int]] = []
+    pos = 0
+    while pos < len(text):
+        if text[pos] == " ":
+            pos += 1
+            continue
+        m = _HEX_TOKEN.match(text, pos)
+        token = m.group(0)
+        where = f"token {token!r} at character {pos + 1}"
+        if token.startswith("<"):
+            if not token.endswith(">"):
+                raise ValueError(f"{where}: a byte set '<' is not closed with '>'")
+            sets.append(_parse_set(token, where, fold_case))
+        elif token == "??":
+            sets.append(ALL_BYTES)
+        elif "?" in token:
+            raise ValueError(f"{where}: '?' only comes as '??' (any byte), alone between spaces")
+        elif token.startswith(">") or ">" in token or "<" in token:
+            raise ValueError(f"{where}: a '>' without its '<', or a set not set apart by spaces")
+        elif len(token) % 2 or not all(ch in _HEX_DIGITS for ch in token):
+            bad_ch = next((ch for ch in token if ch not in _HEX_DIGITS), None)
+            if bad_ch is not None:
+                raise ValueError(f"{where}: {bad_ch!r} is not a hex digit (allowed: 0-9, a-f, "
+                                 "A-F, ??, <...> byte sets, and spaces between tokens)")
+            raise ValueError(f"{where}: odd number of hex digits")
         else:
-            raise ValueError(
-                f"{ch!r} at character {pos} is not a hex digit "
-                "(allowed: 0-9, a-f, A-F, and spaces between byte pairs)"
-            )
-    raise ValueError(f"odd number of hex digits ({digits})")
+            sets.extend(_literal_sets(bytes.fromhex(token), fold_case))
+        pos = m.end()
+    return tuple(sets)
+
+
+def _parse_set(token: str, where: str, fold_case: bool) -> frozenset[int]:
+    """``<30-39 41>``, ``<!0d 0a>``: the set, fold_case applied, then the complement."""
+    body = token[1:-1]
+    negate = body.startswith("!")
+    if negate:
+        body = body[1:]
+    members: set[int] = set()
+    for item in body.split(" ") if body else ():
+        if not item:
+            raise ValueError(f"{where}: items of a set are separated by single spaces")
+        low_high = item.split("-")
+        if len(low_high) > 2 or not all(_PAIR.fullmatch(x) for x in low_high):
+            raise ValueError(f"{where}: {item!r} is neither a byte pair (like 0d) nor a range "
+                             "(like 30-39)")
+        low = int(low_high[0], 16)
+        high = int(low_high[-1], 16)
+        if high < low:
+            raise ValueError(f"{where}: the range {item!r} is reversed (write {low_high[1]}-"
+                             f"{low_high[0]})")
+        members.update(range(low, high + 1))
+    raw = frozenset(members)
+    if negate:
+        raw = ALL_BYTES - raw
+    if not raw:
+        raise ValueError(f"{where}: the set is empty, so it matches no byte")
+    if raw == ALL_BYTES:
+        raise ValueError(f"{where}: the set holds every byte; write ?? for any byte")
+    folded = _fold(frozenset(members)) if fold_case else frozenset(members)
+    result = ALL_BYTES - folded if negate else folded
+    if not result:
+        raise ValueError(f"{where}: with fold_case the set matches no byte")
+    return result
 
 
 def _check_bool(entry, field: str, default: bool, bad) -> bool:
@@ -505,7 +769,7 @@ def _check_ports(entry, bad) -> tuple[int, ...] | None:
     return tuple(sorted(set(value)))
 
 
-def _check_window(entry, data: bytes | None, bad) -> tuple[int, int] | None:
+def _check_window(entry, parts, bad) -> tuple[int, int] | None:
     if "window" not in entry:
         return None
     value = entry["window"]
@@ -519,11 +783,11 @@ def _check_window(entry, data: bytes | None, bad) -> tuple[int, int] | None:
         bad("window", f"start {start} must be less than end {end}")
     elif end > MAX_WINDOW_END:
         bad("window", f"end {end} is larger than {MAX_WINDOW_END}")
-    elif data is not None and end - start < len(data):
+    elif parts is not None and end - start < (need := sum(len(p) + p.low for p in parts)):
         bad(
             "window",
             f"[{start}, {end}) holds {end - start} bytes, fewer than the "
-            f"{len(data)}-byte pattern: it could never match",
+            f"{need}-byte pattern: it could never match",
         )
     else:
         return (start, end)
@@ -540,7 +804,20 @@ def _as_entry(sig: Signature) -> dict[str, Any]:
         "label": sig.label,
         "tags": sig.tags,
     }
-    entry["hex"] = sig.data.hex()
+    parts = sig.parts or None
+    if parts is None:
+        if sig.written == "text" and sig.data.decode("utf-8", "replace").encode() == sig.data:
+            entry["text"] = sig.data.decode("utf-8")
+        else:
+            entry["hex"] = sig.data.hex()
+    elif len(parts) == 1:
+        entry[parts[0].field] = parts[0].source
+    else:
+        entry["part"] = [
+            {p.field: p.source, "fold_case": p.fold_case,
+             **({"spacing": [p.low, "any" if p.high is None else p.high]} if k else {})}
+            for k, p in enumerate(parts)
+        ]
     if sig.transport != "tcp" or sig.scope != "datagram":
         entry["scope"] = sig.scope
     if sig.ports is not None:

@@ -57,6 +57,8 @@ def problems(blob) -> list[str]:
     if found:  # the rest reads sections the directory describes
         return found
     found += _records(blob, h)
+    if h.nparts:
+        found += _parts(blob, h)
     try:
         image.read_names(blob, h)
     except image.TableError as err:
@@ -78,7 +80,12 @@ def _header(blob: bytes, h: image.Header) -> list[str]:
     out = []
     if h.flags:
         out.append(f"header flags are {h.flags:#x}, not 0")
-    if any(blob[48:64]):
+    if h.version == image.FORMAT_VERSION:
+        if any(blob[56:64]):
+            out.append("the header's reserved bytes 56..63 are not all zero")
+        if h.nparts == 0:
+            out.append("version 2 without part records: write a set without parts as version 1")
+    elif any(blob[48:64]):
         out.append("the header's reserved bytes 48..63 are not all zero")
     if not 1 <= h.nclasses <= 256:
         out.append(f"{h.nclasses} byte classes: must be 1..256")
@@ -278,4 +285,50 @@ def _compact(blob: bytes, h: image.Header) -> list[str]:
                 most = max(most, len(outputs))
     if most != h.max_outputs:
         out.append(f"max_outputs is {h.max_outputs}, but the most outputs of a state is {most}")
+    return out
+
+
+def _parts(blob: bytes, h: image.Header) -> list[str]:
+    """Part records (section 17) as the compiler writes them: every signature
+    has its parts, in order, all with the same count; the first part has no
+    spacing; MIN <= MAX; the link of every part but the last has a capacity
+    and the links tile the tracker memory in order; a signature record of a
+    multi-part signature holds its shortest occurrence's length."""
+    from seamscan import tracker
+
+    out: list[str] = []
+    raw = _section(blob, h, image.SEC_PARTS)
+    records = [image.PART_RECORD.unpack_from(raw, image.PART_RECORD.size * i)
+               for i in range(h.nparts)]
+    expect_sig, expect_index, slot = 0, 0, 0
+    for i, (sig, index, count, _length, cap, low, high, link) in enumerate(records):
+        what = f"part record #{i + 1}"
+        if (sig, index) != (expect_sig, expect_index):
+            out.append(f"{what}: signature #{sig + 1} part {index + 1}, expected signature "
+                       f"#{expect_sig + 1} part {expect_index + 1}")
+            break
+        if index and records[i - 1][2] != count:
+            out.append(f"{what}: {count} parts, the record before says {records[i - 1][2]}")
+        if index == 0 and (low, high) != (0, 0):
+            out.append(f"{what}: a first part with a spacing")
+        if index and high != tracker.ANY and low > high:
+            out.append(f"{what}: spacing MIN {low} above MAX {high}")
+        last = index + 1 == count
+        if last and (cap or link):
+            out.append(f"{what}: the last part has a link")
+        if not last:
+            if cap == 0:
+                out.append(f"{what}: a link of capacity 0")
+            if link != slot:
+                out.append(f"{what}: link at byte {link}, expected {slot}")
+            slot += tracker.link_bytes(cap)
+        expect_sig, expect_index = (sig + 1, 0) if last else (sig, index + 1)
+    else:
+        longest = max((r[3] for r in records), default=0)
+        if longest != h.max_len:
+            out.append(f"max_len {h.max_len} is not the longest part, {longest} bytes")
+        if expect_sig != h.sigs or expect_index:
+            out.append(f"the part records cover {expect_sig} of {h.sigs} signatures")
+        if slot != h.track_bytes:
+            out.append(f"tracker bytes {h.track_bytes}, the links take {slot}")
     return out
